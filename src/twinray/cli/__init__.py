@@ -1,0 +1,1 @@
+"""The ``twinray`` command line: a thin shell over the library."""
