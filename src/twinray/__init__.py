@@ -20,4 +20,32 @@ __all__ = [
     "SinogramGeometry",
     "sinogram_geometry",
     "Accounting",
+    "EventSource",
+    "open_events",
+    "iter_event_batches",
+    "read_events",
+    "event_statistics",
+    "BinningState",
+    "bin_events",
+    "bin_event_arrays",
+    "make_sinogram",
 ]
+
+# Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
+_LAZY = {
+    "EventSource": "events", "open_events": "events", "iter_event_batches": "events",
+    "read_events": "events", "event_statistics": "events",
+    "BinningState": "binning", "bin_events": "binning", "bin_event_arrays": "binning",
+    "make_sinogram": "sinogram",
+}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'twinray' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value

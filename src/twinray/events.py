@@ -534,3 +534,76 @@ def event_statistics(source, rate_bin_s: float | None = None, batch_size: int = 
                            time_min_ns=t_lo, time_max_ns=t_hi, rate_bin_s=rate_bin_s,
                            prompts_per_bin=prompts_hist, delayed_per_bin=delayed_hist, before_start=before,
                            energy_kev=energy)
+
+
+def inspect_events(path, scanner=None, rate_bin_s: float | None = None, batch_size: int = DEFAULT_BATCH_SIZE,
+                   progress=None) -> dict:
+    """Everything ``twinray inspect`` shows, as one JSON-ready dict.
+
+    Parameters
+    ----------
+    path : path-like or EventSource
+    scanner : Scanner or path-like, optional
+    rate_bin_s : float, optional
+        Count-rate bin width, seconds (default: about 30 bins).
+    batch_size : int
+    progress : callable, optional
+        ``progress(rows_done_in_batch, total_rows)``.
+
+    Returns
+    -------
+    dict
+        ``files`` (name, rows), ``ignored``, ``schema`` (column, Arrow type,
+        nullable), ``metadata`` (the ``twinray`` object), ``scanner`` (after
+        ``--scanner``), ``counts`` (rows, prompts, delayed, invalid crystal),
+        ``time`` (first/last event, s), ``count_rate`` (bin width, bin starts,
+        prompts and delayed per second), ``energy_kev`` and an ``accounting``
+        object: inspect counts events by kind, it bins nothing, so
+        ``prompts_binned``/``delayed_binned`` count the rows of each kind with
+        valid crystal ids and the rest are ``rejected_invalid_crystal``.
+    """
+    source = _as_source(path, scanner)
+    schema = _open_parquet(source.paths[0]).schema_arrow
+    total = source.num_rows
+    report = (lambda n: progress(n, total)) if progress is not None else None
+    stats = event_statistics(source, rate_bin_s, batch_size, progress=report)
+    width = stats.rate_bin_s
+    n_bins = len(stats.prompts_per_bin)
+    # Split the invalid rows by kind so the accounting balances.
+    counts_valid = stats.rows - stats.invalid_crystal
+    delayed_valid = stats.delayed
+    if stats.invalid_crystal:
+        delayed_valid = _count_valid_delayed(source, batch_size) if source.has_delayed else 0
+    accounting = {name: 0 for name in ("read", "prompts_binned", "delayed_binned", "rejected_invalid_crystal",
+                                       "rejected_outside_frame", "rejected_energy_window", "rejected_no_lor",
+                                       "rejected_ring_difference", "rejected_radial_fov")}
+    accounting.update(read=stats.rows, prompts_binned=counts_valid - delayed_valid, delayed_binned=delayed_valid,
+                      rejected_invalid_crystal=stats.invalid_crystal)
+    return {
+        "events": str(source.path),
+        "files": [{"name": p.name, "rows": r} for p, r in zip(source.paths, source.rows_per_file)],
+        "ignored": list(source.ignored),
+        "schema": [{"name": f.name, "type": str(f.type), "nullable": bool(f.nullable)} for f in schema],
+        "metadata": source.metadata,
+        "scanner": source.scanner.to_dict(),
+        "counts": {"rows": stats.rows, "prompts": stats.prompts, "delayed": stats.delayed,
+                   "invalid_crystal": stats.invalid_crystal, "negative_time": stats.before_start},
+        "time": {"first_event_s": None if stats.time_min_ns is None else stats.time_min_ns * 1e-9,
+                 "last_event_s": None if stats.time_max_ns is None else stats.time_max_ns * 1e-9,
+                 "duration_s": source.duration_s},
+        "count_rate": {"bin_s": width, "start_s": (np.arange(n_bins) * width).tolist(),
+                       "prompts_per_s": (stats.prompts_per_bin / width).tolist(),
+                       "delayed_per_s": (stats.delayed_per_bin / width).tolist()},
+        "energy_kev": stats.energy_kev,
+        "accounting": accounting,
+    }
+
+
+def _count_valid_delayed(source: EventSource, batch_size: int) -> int:
+    n_crystals = source.scanner.n_crystals
+    total = 0
+    for _, a in iter_event_batches(source, ("crystal_a", "crystal_b", "delayed"), batch_size):
+        ca, cb = a["crystal_a"], a["crystal_b"]
+        ok = (ca >= 0) & (ca < n_crystals) & (cb >= 0) & (cb < n_crystals)
+        total += int(np.count_nonzero(a["delayed"] & ok))
+    return total

@@ -14,6 +14,8 @@ import click
 
 #: subcommand name -> "module:attribute" of its click command.
 COMMANDS = {
+    "inspect": "twinray.cli.inspect_cmd:inspect_command",
+    "sinogram": "twinray.cli.sinogram:sinogram_command",
 }
 
 
