@@ -16,6 +16,7 @@ import click
 COMMANDS = {
     "inspect": "twinray.cli.inspect_cmd:inspect_command",
     "sinogram": "twinray.cli.sinogram:sinogram_command",
+    "tac": "twinray.cli.tac:tac",
 }
 
 
