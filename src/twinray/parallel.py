@@ -43,7 +43,7 @@ def _run_single_threaded(func, item, shared):
 
 
 @contextlib.contextmanager
-def dask_client(workers: int | None = None, scheduler: str | None = None):
+def dask_client(workers: int | None = None, scheduler: str | None = None, connect_timeout_s: float = 10.0):
     """A Dask client on a fresh loopback cluster or on an existing scheduler.
 
     Parameters
@@ -53,6 +53,8 @@ def dask_client(workers: int | None = None, scheduler: str | None = None):
     scheduler : str, optional
         Address of a running scheduler, e.g. ``tcp://10.0.0.5:8786``; no local
         cluster is started then.
+    connect_timeout_s : float
+        How long to try to reach ``scheduler``, s.
 
     Yields
     ------
@@ -64,7 +66,8 @@ def dask_client(workers: int | None = None, scheduler: str | None = None):
         if not _ADDRESS.match(scheduler.strip()):
             raise TwinrayInputError(f"--scheduler '{scheduler}' is not a Dask address like tcp://HOST:PORT")
         try:
-            client = Client(scheduler.strip(), timeout="10s", set_as_default=False)
+            client = Client(scheduler.strip(), timeout=f"{float(connect_timeout_s)}s",
+                            set_as_default=False)
         except (OSError, TimeoutError) as exc:
             raise TwinrayInputError(f"cannot reach the Dask scheduler at {scheduler} "
                                     f"({' '.join(str(exc).split())[:100]})") from None
@@ -76,10 +79,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None):
     n = default_workers() if workers is None else int(workers)
     if n < 1:
         raise TwinrayInputError(f"--workers must be >= 1, got {workers}")
-    # Loopback only, no dashboard, one thread per worker: tasks themselves are
-    # numba code, and process workers avoid contention for the GIL.
+    # Everything on loopback (its HTTP endpoint too, on a free port rather than
+    # the fixed 8787); one thread per worker process: the tasks are numba code,
+    # and processes avoid contention for the GIL.
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address=None, silence_logs=50)
+                           dashboard_address="127.0.0.1:0", silence_logs=50)
     try:
         client = Client(cluster, set_as_default=False)
         try:
@@ -134,8 +138,10 @@ def map_tasks(func, items, shared: dict | None = None, *, workers: int | None = 
     from distributed import as_completed
 
     # scatter([v]) keeps a dict value whole (scatter(dict) would split it by key).
-    shared_futures = {k: client.scatter([v], broadcast=True)[0] for k, v in shared.items()}
-    item_futures = client.scatter(items)
+    # hash=False: unique keys, so equal items of two maps in a row never share
+    # (and race to release) one piece of scattered data.
+    shared_futures = {k: client.scatter([v], broadcast=True, hash=False)[0] for k, v in shared.items()}
+    item_futures = client.scatter(items, hash=False)
     futures = [client.submit(_run_single_threaded, func, f, shared_futures, pure=False) for f in item_futures]
     index = {f.key: i for i, f in enumerate(futures)}
     results = [None] * len(futures)
@@ -145,7 +151,8 @@ def map_tasks(func, items, shared: dict | None = None, *, workers: int | None = 
             results[index[fut.key]] = fut.result()
             if on_done is not None:
                 on_done()
-    finally:
+    except BaseException:
         for f in futures:
             f.cancel()
+        raise
     return results
