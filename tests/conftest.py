@@ -80,7 +80,7 @@ def random_events(scanner: Scanner, n: int, rng: np.random.Generator, *, duratio
     ra = rng.integers(0, scanner.rings, n)
     rb = rng.integers(0, scanner.rings, n)
     ja = rng.integers(0, cpr, n)
-    jb = (ja + cpr // 2 + rng.integers(-cpr // 4, cpr // 4 + 1, n)) % cpr
+    jb = (ja + cpr // 2 + rng.integers(-(3 * cpr) // 8, (3 * cpr) // 8 + 1, n)) % cpr
     same = rng.random(n) < 0.05
     jb = np.where(same, ja, jb)          # a few "no LOR" pairs
     a = (ra * cpr + ja).astype(np.int64)
