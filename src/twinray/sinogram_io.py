@@ -80,7 +80,8 @@ def _json_default(obj):
 
 def write_sinogram_file(path, arrays: dict, geometry: SinogramGeometry, *, frame_start_s: float = 0.0,
                         frame_duration_s: float = 0.0, accounting: Accounting | None = None,
-                        attrs: dict | None = None, compression: int | None = 1) -> Path:
+                        attrs: dict | None = None, compression: int | None = 1,
+                        extra_arrays: dict | None = None) -> Path:
     """Write sinogram datasets and attributes atomically.
 
     Parameters
@@ -97,6 +98,9 @@ def write_sinogram_file(path, arrays: dict, geometry: SinogramGeometry, *, frame
         Further root attributes; dicts and lists are stored as JSON.
     compression : int or None
         gzip level (standard HDF5 filter, readable everywhere); None for none.
+    extra_arrays : dict of str to ndarray, optional
+        Further datasets of any shape, stored without the sinogram shape
+        check (e.g. ``crystal_efficiency`` of a normalization file).
     """
     import h5py
 
@@ -113,6 +117,8 @@ def write_sinogram_file(path, arrays: dict, geometry: SinogramGeometry, *, frame
                                  compression="gzip" if compression else None,
                                  compression_opts=compression if compression else None,
                                  shuffle=bool(compression))
+            for name, arr in (extra_arrays or {}).items():
+                f.create_dataset(name, data=np.asarray(arr))
             for key, value in geometry_attributes(geometry).items():
                 f.attrs[key] = value
             f.attrs["frame_start_s"] = float(frame_start_s)
