@@ -1,0 +1,40 @@
+"""numba kernel of the FBP back projection (see ``fbp.py``)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+
+@njit(cache=True, parallel=True, fastmath=True)
+def backproject_filtered(filtered, cos_phi, sin_phi, s0_mm, tau_mm, x_mm, y_mm, scale, out):
+    """``out[p, j, i] = scale * sum_v Q[p, v](x_i cos(phi_v) + y_j sin(phi_v))``.
+
+    Linear interpolation between the uniform radial samples
+    ``s_k = s0_mm + k*tau_mm``; 0 outside them. Each thread owns whole image
+    rows (a gather, so no write races). ``x_mm`` must be evenly spaced.
+    """
+    n_planes, n_views, n_radial = filtered.shape
+    ny = y_mm.shape[0]
+    nx = x_mm.shape[0]
+    dx = x_mm[1] - x_mm[0] if nx > 1 else 0.0
+    for item in prange(n_planes * ny):
+        p = item // ny
+        j = item % ny
+        y = y_mm[j]
+        row = np.zeros(nx)
+        for v in range(n_views):
+            # u is linear along the row: u_i = u_0 + i*du.
+            u0 = (x_mm[0] * cos_phi[v] + y * sin_phi[v] - s0_mm) / tau_mm
+            du = dx * cos_phi[v] / tau_mm
+            q = filtered[p, v]
+            for i in range(nx):
+                u = u0 + i * du
+                k = int(math.floor(u))
+                if k >= 0 and k < n_radial - 1:
+                    w = u - k
+                    row[i] += q[k] + w * (q[k + 1] - q[k])
+        for i in range(nx):
+            out[p, j, i] = row[i] * scale
