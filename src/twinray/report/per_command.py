@@ -1,0 +1,123 @@
+"""One call per command: read the command's outputs and write a report next to them.
+
+Every ``report_for_*`` function builds a :class:`~twinray.report.builder.Report`
+from the files a command wrote, adds the provenance (version, options, input
+checksums, date, machine) and writes it atomically. A command's ``--report
+PATH`` option only has to call one of these after its outputs exist.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from . import sections
+from .builder import Report
+from .provenance import provenance
+
+
+def _finish(report: Report, report_path, command: str, options, inputs) -> Path:
+    report.provenance(provenance(command=command, options=options, inputs=inputs))
+    return report.write(report_path)
+
+
+def report_for_events(events_path, report_path, *, scanner=None, command: str = "", options=None) -> Path:
+    """Report of ``twinray inspect``: counts by kind, metadata, count rate over time.
+
+    Parameters
+    ----------
+    events_path : path-like
+        The event file or folder.
+    report_path : path-like
+        Where ``report.html`` goes.
+    scanner : Scanner, optional
+        ``--scanner`` geometry, when the file has no embedded one.
+    command : str
+        The command line, for the provenance.
+    options : dict, optional
+        Options as used.
+
+    Returns
+    -------
+    Path
+    """
+    rep = Report(f"Events {Path(events_path).name}", "twinray inspect")
+    sections.add_events_sections(rep, events_path, scanner=scanner)
+    return _finish(rep, report_path, command, options, [events_path])
+
+
+def report_for_sinogram(sinogram_path, report_path, *, events_path=None, scanner=None, plane=None,
+                        command: str = "", options=None, inputs=()) -> Path:
+    """Report of ``twinray sinogram``: accounting, raw vs corrected plane, correction profiles.
+
+    Parameters
+    ----------
+    sinogram_path : path-like
+        The HDF5 sinogram written.
+    report_path : path-like
+    events_path : path-like, optional
+        The events it was made from: adds the count rate over time.
+    scanner : Scanner, optional
+    plane : int, optional
+        Plane to show.
+    command, options :
+        For the provenance.
+    inputs : iterable of path-like
+        Input files (events, norm, mu-map) to checksum.
+    """
+    rep = Report(f"Sinogram {Path(sinogram_path).name}", "twinray sinogram")
+    if events_path is not None:
+        sections.add_events_sections(rep, events_path, scanner=scanner)
+    sections.add_sinogram_sections(rep, sinogram_path, plane=plane)
+    return _finish(rep, report_path, command, options, list(inputs) or [events_path])
+
+
+def report_for_normalization(norm_path, report_path, *, command: str = "", options=None, inputs=()) -> Path:
+    """Report of ``twinray normalize``: crystal efficiencies and normalization factors."""
+    rep = Report(f"Normalization {Path(norm_path).name}", "twinray normalize")
+    sections.add_normalization_sections(rep, norm_path)
+    return _finish(rep, report_path, command, options, inputs)
+
+
+def report_for_image(image_path, report_path, *, compare_with: dict | None = None, command: str = "",
+                     options=None, inputs=()) -> Path:
+    """Report of ``twinray reconstruct``: facts, slices in three orientations, accounting.
+
+    Parameters
+    ----------
+    image_path : path-like
+        NIfTI image with its JSON sidecar.
+    report_path : path-like
+    compare_with : dict of str to path-like, optional
+        Other images of the same grid to show beside it (label -> path).
+    command, options, inputs :
+        For the provenance.
+    """
+    rep = Report(f"Image {Path(image_path).name}", "twinray reconstruct")
+    sections.add_image_sections(rep, image_path)
+    if compare_with:
+        sections.add_comparison_sections(rep, {Path(image_path).name: image_path, **compare_with},
+                                         heading="Images side by side")
+    return _finish(rep, report_path, command, options, inputs)
+
+
+def report_for_dynamic(output_dir, report_path, *, tac_path=None, command: str = "", options=None,
+                       inputs=()) -> Path:
+    """Report of ``twinray dynamic``: frames, decay factors and (if given) TACs."""
+    rep = Report(f"Dynamic study {Path(output_dir).name}", "twinray dynamic")
+    sections.add_dynamic_sections(rep, output_dir, tac_path=tac_path)
+    return _finish(rep, report_path, command, options, inputs)
+
+
+def report_for_tac(tac_path, report_path, *, units: str = "", command: str = "", options=None,
+                   inputs=()) -> Path:
+    """Report of ``twinray tac``: the curves and their table."""
+    rep = Report(f"Time-activity curves {Path(tac_path).name}", "twinray tac")
+    sections.add_tac_sections(rep, tac_path, units=units)
+    return _finish(rep, report_path, command, options, inputs)
+
+
+def report_for_resample(output_dir, report_path, *, command: str = "", options=None, inputs=()) -> Path:
+    """Report of ``twinray resample``: mean image, noise map, noise against counts."""
+    rep = Report(f"Noise study {Path(output_dir).name}", "twinray resample")
+    sections.add_resample_sections(rep, output_dir)
+    return _finish(rep, report_path, command, options, inputs)
