@@ -1,0 +1,172 @@
+"""Resampling of list-mode events (twinray.resample, twinray._resample_kernels)."""
+
+import math
+
+import numpy as np
+import pytest
+import scipy.stats
+
+from conftest import make_small_scanner, random_events
+from twinray import _resample_kernels as rk
+from twinray.binning import bin_events
+from twinray.errors import TwinrayInputError
+from twinray.resample import (bin_replicates, check_resampling, parse_fractions, replicate_weights,
+                              voxel_statistics)
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    """20 000 random events with delayed flags and energies on the 4-ring test scanner, 10 s."""
+    from conftest import event_metadata
+    from twinray.event_writer import write_events
+
+    scanner = make_small_scanner()
+    cols = random_events(scanner, 20000, np.random.default_rng(11), energies=True)
+    path = tmp_path_factory.mktemp("resample") / "events.parquet"
+    write_events(path, cols, event_metadata(scanner))
+    return path
+
+
+@pytest.fixture(scope="module")
+def original(study):
+    return bin_events(study)
+
+
+def test_splitmix64_reference_outputs():
+    """SplitMix64 with state 1234567: first five outputs of the published generator
+    (Steele, Lea & Flood 2014; values as printed by the reference C code, quoted from memory)."""
+    state, out = 1234567, []
+    for _ in range(5):
+        state = (state + rk.GOLDEN_GAMMA) & ((1 << 64) - 1)
+        out.append(rk.mix64(state))
+    assert out == [6457827717110365317, 3203168211198807973, 9817491932198370423,
+                   4593380528125082431, 16408922859458223821]
+
+
+def test_kernel_weights_match_the_python_reference():
+    """The numba draws equal an independent pure-Python evaluation of the same definition."""
+    w = replicate_weights(5, "bootstrap", None, 3, 1000, 50)
+    keys = [rk.stream_key(5, r) for r in range(3)]
+    cdf = [sum(math.exp(-1) / math.factorial(j) for j in range(k + 1)) for k in range(21)]
+    for i in range(50):
+        for r in range(3):
+            u = rk.draw_uniform(keys[r], 1000 + i)
+            expected = next((k for k, c in enumerate(cdf) if u < c), 20)
+            assert w[i, r] == expected
+    t = replicate_weights(5, "thin", [0.3], 2, 7, 40)
+    keys = [rk.stream_key(5, r) for r in range(2)]
+    for i in range(40):
+        for r in range(2):
+            assert t[i, r] == (rk.draw_uniform(keys[r], 7 + i) < 0.3)
+
+
+def test_poisson1_weights_follow_the_poisson_law():
+    """Bootstrap weights ~ Poisson(1) (Hanley & MacGibbon 2006): chi-square test against
+    scipy.stats.poisson (reference library) on 400 000 draws."""
+    w = replicate_weights(1, "bootstrap", None, 2, 0, 200_000).reshape(-1)
+    observed = np.bincount(w, minlength=6)[:6].astype(float)
+    observed[5] = (w >= 5).sum()
+    p = scipy.stats.poisson.pmf(np.arange(5), 1.0)
+    expected = np.append(p, 1 - p.sum()) * w.size
+    chi2 = ((observed - expected) ** 2 / expected).sum()
+    assert scipy.stats.chi2.sf(chi2, df=5) > 1e-4
+    assert w.mean() == pytest.approx(1.0, abs=0.01) and w.var() == pytest.approx(1.0, abs=0.015)
+
+
+def test_thinning_counts_are_binomial(study, original):
+    """Thinning keeps each event with probability P: bin counts have mean P*n and variance
+    n*P*(1-P) (binomial distribution, textbook; references.md s.10 oracle 1)."""
+    replicates = 300
+    state = bin_replicates(study, mode="thin", fractions=[0.2, 0.6], replicates=replicates, seed=9)
+    n = original.prompts[0].astype(np.float64)
+    nd = original.delayed[0].astype(np.float64)
+    assert state.prompts.shape == (2 * replicates,) + original.prompts.shape[1:]
+    for p in (0.2, 0.6):
+        x = state.prompts[state.fractions == p].astype(np.float64)
+        mean, var = x.mean(axis=0), x.var(axis=0, ddof=1)
+        sd_of_mean = np.sqrt(n * p * (1 - p) / replicates)
+        z = np.divide(mean - p * n, sd_of_mean, out=np.zeros_like(n), where=n > 0)
+        assert np.abs(z).max() < 5.0
+        # Summed over bins the relative error of the variance estimate is ~sqrt(2/(B-1)/bins) < 1 %.
+        assert var.sum() / (n * p * (1 - p)).sum() == pytest.approx(1.0, abs=0.03)
+        d = state.delayed[state.fractions == p].astype(np.float64)
+        assert d.mean(axis=0).sum() / nd.sum() == pytest.approx(p, rel=0.02)
+    # Nothing is ever created: a thinned bin never exceeds the original.
+    assert (state.prompts <= original.prompts[0][None]).all()
+
+
+def test_bootstrap_variance_equals_the_count(study, original):
+    """Poisson bootstrap: replicate counts of a bin have mean n and variance n, the Poisson
+    variance (references.md s.10 oracle 3; Hanley & MacGibbon 2006)."""
+    replicates = 300
+    state = bin_replicates(study, mode="bootstrap", replicates=replicates, seed=4)
+    n = original.prompts[0].astype(np.float64)
+    x = state.prompts.astype(np.float64)
+    mean, var = x.mean(axis=0), x.var(axis=0, ddof=1)
+    z = np.divide(mean - n, np.sqrt(n / replicates), out=np.zeros_like(n), where=n > 0)
+    assert np.abs(z).max() < 5.0
+    assert var.sum() / n.sum() == pytest.approx(1.0, abs=0.03)
+    busy = n >= 15
+    assert np.median(var[busy] / n[busy]) == pytest.approx(1.0, abs=0.1)
+    np.testing.assert_array_equal(state.totals[:, 0], x.reshape(replicates, -1).sum(axis=1))
+    assert (x[:, n == 0] == 0).all()
+
+
+def test_reproducible_whatever_the_batch_size_and_replicate_count(study):
+    a = bin_replicates(study, mode="bootstrap", replicates=4, seed=21, batch_size=1 << 20)
+    b = bin_replicates(study, mode="bootstrap", replicates=4, seed=21, batch_size=999)
+    np.testing.assert_array_equal(a.prompts, b.prompts)
+    np.testing.assert_array_equal(a.delayed, b.delayed)
+    # replicate r does not depend on how many replicates were asked for
+    c = bin_replicates(study, mode="bootstrap", replicates=2, seed=21, batch_size=4096)
+    np.testing.assert_array_equal(a.prompts[:2], c.prompts)
+    d = bin_replicates(study, mode="bootstrap", replicates=4, seed=22)
+    assert not np.array_equal(a.prompts, d.prompts)
+    # a tiny memory budget reads the events once per replicate: same numbers
+    e = bin_replicates(study, mode="bootstrap", replicates=4, seed=21, memory_bytes=1)
+    assert e.passes == 4 and a.passes == 1
+    np.testing.assert_array_equal(a.prompts, e.prompts)
+
+
+def test_accounting_is_that_of_the_original_events(study, original):
+    state = bin_replicates(study, mode="thin", fractions=[1.0], replicates=2, seed=0)
+    assert state.accounting == original.accounting(0)
+    assert state.accounting.balances()
+    # thinning with P = 1 keeps every event: both replicates equal the ordinary binning
+    np.testing.assert_array_equal(state.prompts[0], original.prompts[0])
+    np.testing.assert_array_equal(state.delayed[1], original.delayed[0])
+
+
+def test_frame_window(study):
+    full = bin_events(study, frames=[(2.0, 5.0)])
+    state = bin_replicates(study, mode="thin", fractions=[1.0], replicates=2, frame=(2.0, 5.0))
+    np.testing.assert_array_equal(state.prompts[0], full.prompts[0])
+    assert state.accounting == full.accounting(0)
+    assert state.frame_s == (2.0, 5.0)
+
+
+def test_options_are_checked():
+    assert check_resampling("bootstrap", 5, None) == (1.0,)
+    assert parse_fractions("0.1, 0.5") == (0.1, 0.5)
+    for args, match in [(("jackknife", 5, None), "bootstrap or thin"), (("bootstrap", 1, None), ">= 2"),
+                        (("bootstrap", 5, [0.5]), "thin only"), (("thin", 5, None), "needs --fraction"),
+                        (("thin", 5, [0.0]), r"\(0, 1\]"), (("thin", 5, [1.5]), r"\(0, 1\]"),
+                        (("thin", 5, [0.5, 0.5]), "twice")]:
+        with pytest.raises(TwinrayInputError, match=match):
+            check_resampling(*args)
+    with pytest.raises(TwinrayInputError, match="numbers"):
+        parse_fractions("half")
+
+
+def test_voxel_statistics():
+    """ddof = 1 standard deviation (numpy reference) and cov = std/mean, 0 where mean is 0."""
+    rng = np.random.default_rng(0)
+    images = rng.normal(5.0, 1.0, (7, 4, 3, 2))
+    images[:, 0, 0, 0] = 0.0
+    mean, std, cov = voxel_statistics(images)
+    np.testing.assert_allclose(std, np.std(images, axis=0, ddof=1), rtol=1e-6)
+    expected = np.std(images, axis=0, ddof=1)[1:] / images.mean(axis=0)[1:]
+    np.testing.assert_allclose(cov[1:], expected, rtol=1e-5)
+    assert cov[0, 0, 0] == 0.0 and mean.dtype == np.float32
+    with pytest.raises(TwinrayInputError):
+        voxel_statistics(images[:1])
