@@ -1,0 +1,180 @@
+"""numba kernels of the corrections: arithmetic only, on plain arrays.
+
+Crystal-pair kernels walk every crystal pair that a sinogram bin can hold.
+The pairs are listed once per geometry as an in-plane table (``ja < jb``,
+the in-plane bin, and whether crystal ``ja`` is end 1 of the LOR, see
+:func:`twinray.corrections.pairs.inplane_pairs`) crossed with every ring
+pair; crystal ``a = ra*N + ja`` and ``b = rb*N + jb``. Each unordered
+crystal pair is visited exactly once. "Ring-difference index" ``dr`` is
+``ring(end 1) - ring(end 2) + rings - 1`` (0 .. 2*rings - 2).
+
+The Python functions that validate inputs and call these kernels are in
+:mod:`twinray.corrections.pairs`, :mod:`twinray.corrections.normalization`,
+:mod:`twinray.corrections.randoms` and :mod:`twinray.corrections.attenuation`.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+from ..raytrace import siddon_line_integral
+
+
+@njit(cache=True, nogil=True)
+def _pair_indices(ra, rb, ja, jb, a_is_end1, n, rings, plane_of_rings):
+    """Crystals, plane and ring-difference index of one crystal pair (plane -1 if not binned)."""
+    a = ra * n + ja
+    b = rb * n + jb
+    if a_is_end1:
+        plane = plane_of_rings[ra, rb]
+        dr = ra - rb + rings - 1
+    else:
+        plane = plane_of_rings[rb, ra]
+        dr = rb - ra + rings - 1
+    return a, b, plane, dr
+
+
+@njit(cache=True, nogil=True)
+def pair_product_sinogram(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n, rings,
+                          plane_of_rings, bins_per_plane, radial_bins, out):
+    """``out[bin] += factor[a] * factor[b] * pair_table[dr, radial]`` over the crystal pairs of each bin."""
+    for ra in range(rings):
+        for rb in range(rings):
+            for k in range(pair_ja.shape[0]):
+                a, b, plane, dr = _pair_indices(ra, rb, pair_ja[k], pair_jb[k], pair_end1_is_a[k], n, rings,
+                                                plane_of_rings)
+                if plane < 0:
+                    continue
+                inplane = pair_inplane[k]
+                radial = inplane % radial_bins
+                out[plane * bins_per_plane + inplane] += factor[a] * factor[b] * pair_table[dr, radial]
+
+
+@njit(cache=True, nogil=True)
+def fan_and_table_sums(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n, rings,
+                       plane_of_rings, radial_bins, fan_out, table_out):
+    """Model sums of the fan-sum normalization for ``m_ab = f_a f_b G[dr, radial]``.
+
+    ``fan_out[a] += f_b * G`` (the fan sum of crystal a divided by f_a) and
+    ``table_out[dr, radial] += f_a * f_b`` (the model sum of a table cell
+    divided by G).
+    """
+    for ra in range(rings):
+        for rb in range(rings):
+            for k in range(pair_ja.shape[0]):
+                a, b, plane, dr = _pair_indices(ra, rb, pair_ja[k], pair_jb[k], pair_end1_is_a[k], n, rings,
+                                                plane_of_rings)
+                if plane < 0:
+                    continue
+                radial = pair_inplane[k] % radial_bins
+                g = pair_table[dr, radial]
+                fan_out[a] += factor[b] * g
+                fan_out[b] += factor[a] * g
+                table_out[dr, radial] += factor[a] * factor[b]
+
+
+@njit(cache=True, nogil=True)
+def binned_fan_em_sums(factor, measured_flat, model_flat, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n,
+                       rings, plane_of_rings, bins_per_plane, numerator, denominator):
+    """One EM step for binned data modelled as ``sum over pairs in bin of f_a f_b``.
+
+    Each bin's counts are shared among its pairs in proportion to
+    ``f_a f_b``; ``numerator[a]`` receives crystal a's share and
+    ``denominator[a]`` the sum of ``f_b`` over its fan. The update is
+    ``f_a <- numerator[a] / denominator[a]``.
+    """
+    for ra in range(rings):
+        for rb in range(rings):
+            for k in range(pair_ja.shape[0]):
+                a, b, plane, dr = _pair_indices(ra, rb, pair_ja[k], pair_jb[k], pair_end1_is_a[k], n, rings,
+                                                plane_of_rings)
+                if plane < 0:
+                    continue
+                flat = plane * bins_per_plane + pair_inplane[k]
+                m = model_flat[flat]
+                if m > 0.0:
+                    share = measured_flat[flat] * factor[a] * factor[b] / m
+                    numerator[a] += share
+                    numerator[b] += share
+                denominator[a] += factor[b]
+                denominator[b] += factor[a]
+
+
+@njit(cache=True, nogil=True)
+def fan_sums_from_codes(codes, crystal_a, crystal_b, n, rings, radial_bins, inplane_bin, end1_is_a,
+                        fan_prompts, fan_delayed, table_prompts, table_delayed):
+    """Fan sums and (ring difference, radial) sums of the binned events of a batch.
+
+    ``codes`` come from :func:`twinray._binning_kernels.classify_batch`
+    (``-1`` rejected, else ``(flat_bin << 1) | is_delayed`` for frame 0).
+    """
+    for i in range(codes.shape[0]):
+        code = codes[i]
+        if code < 0:
+            continue
+        ca = crystal_a[i]
+        cb = crystal_b[i]
+        ra = ca // n
+        rb = cb // n
+        ja = ca - ra * n
+        jb = cb - rb * n
+        if end1_is_a[ja, jb]:
+            dr = ra - rb + rings - 1
+        else:
+            dr = rb - ra + rings - 1
+        radial = inplane_bin[ja, jb] % radial_bins
+        if code & 1:
+            fan_delayed[ca] += 1
+            fan_delayed[cb] += 1
+            table_delayed[dr, radial] += 1
+        else:
+            fan_prompts[ca] += 1
+            fan_prompts[cb] += 1
+            table_prompts[dr, radial] += 1
+
+
+@njit(cache=True, parallel=True)
+def acf_line_integrals(mu, origin_mm, voxel_mm, transaxial_ends, axial_ends, out):
+    """Line integral of ``mu`` along the nominal LOR of every (plane, view, radial) bin.
+
+    ``transaxial_ends`` is (views, radial, 2, 2) (end 1 / end 2, x / y) and
+    ``axial_ends`` (planes, 2) (z of end 1 / end 2); ``out`` is (planes,
+    views, radial).
+    """
+    planes = axial_ends.shape[0]
+    views = transaxial_ends.shape[0]
+    radial = transaxial_ends.shape[1]
+    for pv in prange(planes * views):
+        p = pv // views
+        v = pv - p * views
+        z1 = axial_ends[p, 0]
+        z2 = axial_ends[p, 1]
+        for r in range(radial):
+            out[p, v, r] = siddon_line_integral(mu, origin_mm, voxel_mm,
+                                                transaxial_ends[v, r, 0, 0], transaxial_ends[v, r, 0, 1], z1,
+                                                transaxial_ends[v, r, 1, 0], transaxial_ends[v, r, 1, 1], z2)
+
+
+@njit(cache=True, nogil=True)
+def singles_sums(time_ns, crystal, counts, interval_ns, frame_starts, frame_ends, n_crystals, out, bad):
+    """Add singles counts to ``out[frame, crystal]``, weighting each interval by its overlap with the frame.
+
+    ``bad[0]`` counts rows with a crystal id outside the scanner, ``bad[1]``
+    rows with negative counts.
+    """
+    for i in range(time_ns.shape[0]):
+        c = crystal[i]
+        if c < 0 or c >= n_crystals:
+            bad[0] += 1
+            continue
+        if counts[i] < 0:
+            bad[1] += 1
+            continue
+        t0 = time_ns[i]
+        t1 = t0 + interval_ns
+        for k in range(frame_starts.shape[0]):
+            lo = t0 if t0 > frame_starts[k] else frame_starts[k]
+            hi = t1 if t1 < frame_ends[k] else frame_ends[k]
+            if hi > lo:
+                out[k, c] += counts[i] * (hi - lo) / interval_ns
