@@ -14,6 +14,8 @@ import click
 
 #: subcommand name -> "module:attribute" of its click command.
 COMMANDS = {
+    "calibrate": "twinray.cli.calibrate:calibrate_command",
+    "reconstruct": "twinray.cli.reconstruct:reconstruct_command",
     "inspect": "twinray.cli.inspect_cmd:inspect_command",
     "sinogram": "twinray.cli.sinogram:sinogram_command",
     "tac": "twinray.cli.tac:tac",
