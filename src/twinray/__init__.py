@@ -29,6 +29,12 @@ __all__ = [
     "bin_events",
     "bin_event_arrays",
     "make_sinogram",
+    "forward_project",
+    "back_project",
+    "ReconOptions",
+    "reconstruct_arrays",
+    "reconstruct_file",
+    "derive_calibration",
 ]
 
 # Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
@@ -37,6 +43,9 @@ _LAZY = {
     "read_events": "events", "event_statistics": "events",
     "BinningState": "binning", "bin_events": "binning", "bin_event_arrays": "binning",
     "make_sinogram": "sinogram",
+    "forward_project": "projectors", "back_project": "projectors",
+    "ReconOptions": "reconstruct.pipeline", "reconstruct_arrays": "reconstruct.pipeline",
+    "reconstruct_file": "reconstruct.pipeline", "derive_calibration": "reconstruct.calibration",
 }
 
 
