@@ -15,8 +15,27 @@ from .builder import Report
 from .provenance import provenance
 
 
+def _from_click_context(command: str, options):
+    """Fill the command line and options from the running click command, when not given."""
+    import sys
+
+    try:
+        import click
+
+        ctx = click.get_current_context(silent=True)
+    except ImportError:  # pragma: no cover - click is a dependency
+        ctx = None
+    if not command:
+        command = " ".join(["twinray", *sys.argv[1:]]) if ctx is not None else ""
+    if options is None and ctx is not None:
+        options = {k: (str(v) if v is not None and not isinstance(v, (int, float, bool, str)) else v)
+                   for k, v in ctx.params.items() if k not in ("run",)}
+    return command, options
+
+
 def _finish(report: Report, report_path, command: str, options, inputs) -> Path:
-    report.provenance(provenance(command=command, options=options, inputs=inputs))
+    command, options = _from_click_context(command, options)
+    report.provenance(provenance(command=command, options=options, inputs=[p for p in inputs if p is not None]))
     return report.write(report_path)
 
 

@@ -1,0 +1,62 @@
+"""The demo's report: every step's outputs in one HTML file.
+
+Built only from the files the steps wrote (through
+:mod:`twinray.report.sections`) plus the steps' ``--json`` results (timings,
+accounting), so it shows what a user running the same commands would get.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from .report import Report, provenance
+from .report import sections
+
+
+def _step(steps, name):
+    return next((s for s in steps if s.name == name), None)
+
+
+def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps, size: str,
+                      workers: int | None) -> Path:
+    """Write ``out/report.html`` for a finished demo run; returns its path."""
+    rep = Report("twinray demonstration: an invented bench-top study",
+                 f"size '{size}'; data: {origin}")
+    rep.heading("What was run")
+    rep.paragraph(manifest.get("description", "A simulated study made by twinray's own simulator."))
+    rep.paragraph("Every step below is an ordinary twinray command; the same command lines typed in a shell "
+                  "give the same files. Nothing in this report comes from anywhere but those files.")
+    rep.table(["step", "command", "wall time (s)"],
+              [(s.name, "twinray " + " ".join(_short(a, out, data) for a in s.argv), round(s.seconds, 2))
+               for s in steps], caption="Steps, in order")
+
+    study = data / manifest["study"]["events"]
+    sections.add_events_sections(rep, study)
+    if (out / "norm.h5").is_file():
+        sections.add_normalization_sections(rep, out / "norm.h5")
+    sections.add_sinogram_sections(rep, out / "sinogram.h5")
+    sections.add_image_sections(rep, out / "osem.nii.gz", label="OSEM image")
+    sections.add_comparison_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"})
+    tac = out / "tac.csv"
+    sections.add_dynamic_sections(rep, out / "dynamic", tac_path=tac if tac.is_file() else None)
+    if (out / "bootstrap").is_dir():
+        sections.add_resample_sections(rep, out / "bootstrap")
+    if (out / "thinning").is_dir():
+        sections.add_resample_sections(rep, out / "thinning")
+    inputs = [data / manifest[k]["events"] for k in ("normscan", "study", "dynamic")]
+    mu = data / (manifest["study"]["events"].removesuffix(".parquet") + "_truth_mu.nii.gz")
+    rep.provenance(provenance(command=f"twinray demo -o {out} --size {size}",
+                              options={"size": size, "workers": workers or "default", "data": str(data),
+                                       "data origin": origin},
+                              inputs=[*inputs, mu]))
+    return rep.write(out / "report.html")
+
+
+def _short(arg: str, out: Path, data: Path) -> str:
+    """Paths relative to the output or data folder, so the command column stays readable."""
+    for base, label in ((out, "OUT"), (data, "DATA")):
+        try:
+            return f"{label}/{Path(arg).relative_to(base)}"
+        except ValueError:
+            continue
+    return arg
