@@ -79,3 +79,13 @@ def test_unknown_isotope_names_where():
         get_isotope("Xx-99", where="phantom.toml isotope")
     with pytest.raises(TwinrayInputError):
         half_life_s("F-19")
+
+
+def test_mean_positron_range_jnm_table():
+    """Mean positron range in water, JNM 2022;63:649 Table 3: F-18 0.6 mm, O-15 3.0 mm, Rb-82 7.1 mm."""
+    from twinray.isotopes import mean_positron_range_mm
+
+    assert mean_positron_range_mm("F18") == 0.6
+    assert mean_positron_range_mm("O-15") == 3.0
+    assert mean_positron_range_mm("Rb-82") == 7.1
+    assert set(ISOTOPES) == set(__import__("twinray.isotopes").isotopes.MEAN_POSITRON_RANGE_MM)

@@ -18,7 +18,9 @@ COMMANDS = {
     "reconstruct": "twinray.cli.reconstruct:reconstruct_command",
     "inspect": "twinray.cli.inspect_cmd:inspect_command",
     "sinogram": "twinray.cli.sinogram:sinogram_command",
+    "dynamic": "twinray.cli.dynamic:dynamic_command",
     "tac": "twinray.cli.tac:tac",
+    "simulate": "twinray.cli.simulate:simulate_command",
 }
 
 
