@@ -117,11 +117,12 @@ def test_point_source_lands_on_its_sinusoid(benchtop_scanner, rng, x0, y0):
     assert np.all(np.abs(centroid - expected) <= width / 2), np.abs(centroid - expected).max()
 
 
-def test_matches_numpy_reference(rng):
+@pytest.mark.parametrize("accumulate", ["direct", "partitioned"])
+def test_matches_numpy_reference(rng, accumulate):
     """The numba kernels equal a plain numpy binner of the same rules, frames and energy window."""
     cols = random_events(SCANNER, 30000, rng, energies=True, invalid_fraction=0.05)
     frames = [(0.5, 2.25), (2.25, 4.0), (7.0, 9.5)]
-    state = bin_event_arrays(cols, GEOMETRY, frames=frames)
+    state = bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate=accumulate)
     prompts, delayed, counts = reference_bin(cols, GEOMETRY, frames, SCANNER.energy_window_kev)
     np.testing.assert_array_equal(state.prompts, prompts)
     np.testing.assert_array_equal(state.delayed, delayed)
@@ -246,10 +247,10 @@ def _events(spec):
 
 
 @SETTINGS
-@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES))
-def test_counts_conserved_and_accounting_exact(spec, frames):
+@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES), accumulate=st.sampled_from(["direct", "partitioned"]))
+def test_counts_conserved_and_accounting_exact(spec, frames, accumulate):
     cols = _events(spec)
-    state = bin_event_arrays(cols, GEOMETRY, frames=frames)
+    state = bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate=accumulate)
     window = SCANNER.energy_window_kev if spec["energies"] else None
     prompts, delayed, counts = reference_bin(cols, GEOMETRY, frames, window)
     np.testing.assert_array_equal(state.counts, counts)

@@ -7,7 +7,7 @@ The Python function that validates inputs and calls these is
    (frame, plane, view, radial, and whether it is a delayed coincidence),
    encoded as one non-negative int64 "code", or the first rejection reason of
    data contract section 5, and fills the accounting counters;
-2. :func:`accumulate_codes` adds the codes to the sinograms, after a counting
+2. :func:`accumulate_codes` (or :func:`accumulate_codes_direct`) adds the codes to the sinograms, after a counting
    sort by plane so that the increments of one plane hit a few hundred
    kilobytes of memory instead of the whole sinogram (random access into a
    large histogram is what limits binning; see the performance notes).
@@ -31,7 +31,7 @@ from .accounting import DELAYED, ENERGY, INVALID_CRYSTAL, NO_LOR, OUTSIDE_FRAME,
 REJECTED = -1
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def frame_of(t, frame_starts, frame_ends):
     """Index of the half-open frame [start, end) holding time ``t``, or -1.
 
@@ -51,87 +51,117 @@ def frame_of(t, frame_starts, frame_ends):
     return k
 
 
-@njit(cache=True, nogil=True)
-def classify_event(ca, cb, in_frame, ea, eb, use_energy, e_lo, e_hi, crystals_per_ring, n_crystals,
-                   inplane_bin, end1_is_a, plane_of_rings, bins_per_plane):
+def inplane_codes(inplane_bin, end1_is_a):
+    """One lookup table for the in-plane step: ``inplane << 1 | end1_is_a``, or the negative marks.
+
+    ``inplane_bin`` marks ``-1`` (no LOR) and ``-2`` (outside the radial
+    field of view) are kept as they are; one random access per event instead
+    of two.
+    """
+    inplane = np.asarray(inplane_bin, dtype=np.int64)
+    code = np.where(inplane >= 0, (inplane << 1) | np.asarray(end1_is_a, dtype=np.int64), inplane)
+    return np.ascontiguousarray(code, dtype=np.int32)
+
+
+def crystal_tables(rings, crystals_per_ring):
+    """Ring and in-ring position of every global crystal id (avoids two divisions per event)."""
+    ids = np.arange(rings * crystals_per_ring, dtype=np.int64)
+    return (np.ascontiguousarray(ids // crystals_per_ring, dtype=np.int32),
+            np.ascontiguousarray(ids % crystals_per_ring, dtype=np.int32))
+
+
+@njit(cache=True, nogil=True, inline="always")
+def inplane_lookup(ca, cb, n_crystals, position_of, inplane_code):
+    """The in-plane table entry of a crystal pair (0 for invalid ids; they are rejected later)."""
+    valid = (ca >= 0) & (ca < n_crystals) & (cb >= 0) & (cb < n_crystals)
+    a = ca if valid else 0
+    b = cb if valid else 0
+    return inplane_code[position_of[a], position_of[b]]
+
+
+@njit(cache=True, nogil=True, inline="always")
+def classify_event(ca, cb, code, in_frame, ea, eb, use_energy, e_lo, e_hi, n_crystals, ring_of, plane_of_rings,
+                   bins_per_plane):
     """Flat sinogram bin of one coincidence, or minus its rejection reason.
 
-    The reasons are tried in the order of data contract section 5: invalid
-    crystal, outside frame, energy window (both photons, limits inclusive; a
-    NaN energy is outside), no LOR, ring difference, radial field of view.
-    Returns ``plane * bins_per_plane + inplane`` (>= 0) or ``-reason`` with
+    ``code`` is :func:`inplane_lookup` of the pair. The reasons are tried in
+    the order of data contract section 5: invalid crystal, outside frame,
+    energy window (both photons, limits inclusive; a NaN energy is outside),
+    no LOR, ring difference, radial field of view. Returns
+    ``plane * bins_per_plane + inplane`` (>= 0) or ``-reason`` with
     ``reason`` the index of the counter in :data:`twinray.accounting.FIELDS`.
+    ``ring_of`` comes from :func:`crystal_tables`.
+
+    Written with selects rather than early returns, so that the work on
+    neighbouring events overlaps instead of waiting on mispredicted branches.
     """
-    if ca < 0 or ca >= n_crystals or cb < 0 or cb >= n_crystals:
-        return -INVALID_CRYSTAL
-    if not in_frame:
-        return -OUTSIDE_FRAME
-    if use_energy:
-        if not (ea >= e_lo and ea <= e_hi and eb >= e_lo and eb <= e_hi):
-            return -ENERGY
-    ra = ca // crystals_per_ring
-    ja = ca - ra * crystals_per_ring
-    rb = cb // crystals_per_ring
-    jb = cb - rb * crystals_per_ring
-    inplane = inplane_bin[ja, jb]
-    if inplane == -1:  # geometry.NO_LOR
-        return -NO_LOR
-    if end1_is_a[ja, jb]:
-        plane = plane_of_rings[ra, rb]
-    else:
-        plane = plane_of_rings[rb, ra]
-    if plane < 0:
-        return -RING_DIFF
-    if inplane < 0:  # geometry.OUTSIDE_RADIAL
-        return -RADIAL_FOV
-    return plane * bins_per_plane + inplane
+    valid = (ca >= 0) & (ca < n_crystals) & (cb >= 0) & (cb < n_crystals)
+    ra = ring_of[ca if valid else 0]
+    rb = ring_of[cb if valid else 0]
+    # End 1 first. For the radial-FOV mark (-2) the order does not matter: the ring-difference
+    # test is symmetric and comes first.
+    end1_is_a = (code & 1) != 0
+    r1 = ra if end1_is_a else rb
+    r2 = rb if end1_is_a else ra
+    plane = plane_of_rings[r1, r2]
+    energy_ok = (ea >= e_lo) & (ea <= e_hi) & (eb >= e_lo) & (eb <= e_hi)
+    result = plane * bins_per_plane + (code >> 1)
+    # Later lines win, so they go from the last reason of the contract's order to the first.
+    result = -RADIAL_FOV if code == -2 else result
+    result = -RING_DIFF if plane < 0 else result
+    result = -NO_LOR if code == -1 else result
+    result = -ENERGY if (use_energy and not energy_ok) else result
+    result = -OUTSIDE_FRAME if not in_frame else result
+    result = -INVALID_CRYSTAL if not valid else result
+    return result
 
 
 @njit(cache=True, nogil=True)
 def classify_batch(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed, energy_a, energy_b, use_energy,
-                   e_lo, e_hi, frame_starts, frame_ends, crystals_per_ring, n_crystals, inplane_bin, end1_is_a,
+                   e_lo, e_hi, frame_starts, frame_ends, n_crystals, ring_of, position_of, inplane_code,
                    plane_of_rings, bins_per_plane, n_bins, codes, counts):
     """Pass 1: a code per event (see the module docstring) and the counters.
 
-    ``counts`` has shape (n_frames + 1, len(FIELDS)); row ``k`` counts the
-    events whose time lies in frame ``k`` and the last row those outside
-    every frame. Without ``use_time`` every event is in frame 0.
-    Returns the number of binned events (codes >= 0).
+    ``counts`` has shape (n_frames + 1, len(FIELDS)) and is added to; row
+    ``k`` counts the events whose time lies in frame ``k`` and the last row
+    those outside every frame. Without ``use_time`` every event is in
+    frame 0. Returns the number of binned events (codes >= 0).
+
+    The in-plane table (crystals_per_ring^2 entries, larger than a core's
+    cache for a whole-body ring) is read in a first tight loop, so that many
+    look-ups are in flight at once; the decisions follow on sequential data.
     """
     n = crystal_a.shape[0]
+    for i in range(n):
+        codes[i] = inplane_lookup(crystal_a[i], crystal_b[i], n_crystals, position_of, inplane_code)
     n_frames = frame_starts.shape[0]
+    local = np.zeros(counts.shape, np.int64)
     binned = 0
     for i in range(n):
         slot = 0
         in_frame = True
         if use_time:
             k = frame_of(time_ns[i], frame_starts, frame_ends)
-            if k < 0:
-                slot = n_frames
-                in_frame = False
-            else:
-                slot = k
-        ea = np.float32(0.0)
-        eb = np.float32(0.0)
-        if use_energy:
-            ea = energy_a[i]
-            eb = energy_b[i]
-        code = classify_event(crystal_a[i], crystal_b[i], in_frame, ea, eb, use_energy, e_lo, e_hi,
-                              crystals_per_ring, n_crystals, inplane_bin, end1_is_a, plane_of_rings,
-                              bins_per_plane)
-        counts[slot, READ] += 1
-        if code >= 0:
-            is_delayed = use_delayed and delayed[i]
-            if is_delayed:
-                counts[slot, DELAYED] += 1
-                codes[i] = ((slot * n_bins + code) << 1) | 1
-            else:
-                counts[slot, PROMPTS] += 1
-                codes[i] = (slot * n_bins + code) << 1
-            binned += 1
-        else:
-            counts[slot, -code] += 1
-            codes[i] = REJECTED
+            in_frame = k >= 0
+            slot = k if in_frame else n_frames
+        ea = energy_a[i] if use_energy else np.float32(0.0)
+        eb = energy_b[i] if use_energy else np.float32(0.0)
+        code = classify_event(crystal_a[i], crystal_b[i], codes[i], in_frame, ea, eb, use_energy, e_lo, e_hi,
+                              n_crystals, ring_of, plane_of_rings, bins_per_plane)
+        is_delayed = delayed[i] if use_delayed else False
+        ok = code >= 0
+        field = (DELAYED if is_delayed else PROMPTS) if ok else -code
+        local[slot, field] += 1
+        codes[i] = (((slot * n_bins + code) << 1) | np.int64(is_delayed)) if ok else REJECTED
+        binned += ok
+    # Every row got exactly one field, so the rows read per slot are the row sums.
+    for s in range(local.shape[0]):
+        total = 0
+        for f in range(local.shape[1]):
+            total += local[s, f]
+        local[s, READ] = total
+        for f in range(local.shape[1]):
+            counts[s, f] += local[s, f]
     return binned
 
 

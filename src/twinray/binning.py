@@ -175,11 +175,19 @@ def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = Tr
     return BinningState(geometry, frames_s, prompts, delayed, counts)
 
 
+#: How binned events are added to the sinograms: "direct" (increments in event order) or
+#: "partitioned" (counting sort by plane first, for cache locality). Chosen by bench/bench_binning.py.
+ACCUMULATE = "direct"
+
+
 class _Binner:
     """Holds the kernel arguments and scratch buffers for one binning run."""
 
-    def __init__(self, state: BinningState, energy_window):
+    def __init__(self, state: BinningState, energy_window, accumulate: str | None = None):
         g = state.geometry
+        self.accumulate = accumulate or ACCUMULATE
+        if self.accumulate not in ("direct", "partitioned"):
+            raise ValueError(f"unknown accumulate mode {self.accumulate!r}")
         self.state = state
         self.g = g
         self.use_energy = energy_window is not None
@@ -201,9 +209,9 @@ class _Binner:
         self.key_counts = np.zeros(self.n_keys + 1, np.int64)
         self.codes = np.zeros(0, np.int64)
         self.sorted_codes = np.zeros(0, np.int64)
-        self.inplane = np.ascontiguousarray(g.inplane_bin, dtype=np.int32)
-        self.end1 = np.ascontiguousarray(g.inplane_end1_is_a, dtype=np.bool_)
-        self.rings = np.ascontiguousarray(g.plane_of_rings, dtype=np.int32)
+        self.inplane_code = kernels.inplane_codes(g.inplane_bin, g.inplane_end1_is_a)
+        self.ring_of, self.position_of = kernels.crystal_tables(g.scanner.rings, g.scanner.crystals_per_ring)
+        self.plane_of_rings = np.ascontiguousarray(g.plane_of_rings, dtype=np.int32)
         self.no_time = np.zeros(0, np.int64)
         self.no_flag = np.zeros(0, np.bool_)
         self.no_energy = np.zeros(0, np.float32)
@@ -230,15 +238,19 @@ class _Binner:
                 raise TwinrayInputError(f"column {name} has {len(arr)} rows, crystal_a has {n}")
         if len(self.codes) < n:
             self.codes = np.empty(n, np.int64)
-            self.sorted_codes = np.empty(n, np.int64)
+            if self.accumulate == "partitioned":
+                self.sorted_codes = np.empty(n, np.int64)
         codes = self.codes[:n]
         sc = self.g.scanner
         kernels.classify_batch(ca, cb, t, self.use_time, d, d.size > 0, ea, eb, self.use_energy,
-                               self.e_lo, self.e_hi, self.starts, self.ends, sc.crystals_per_ring, sc.n_crystals,
-                               self.inplane, self.end1, self.rings, self.bins_per_plane, self.n_bins, codes,
-                               self.state.counts)
-        kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,
-                                 self.n_keys, self.key_counts, self.sorted_codes)
+                               self.e_lo, self.e_hi, self.starts, self.ends, sc.n_crystals, self.ring_of,
+                               self.position_of, self.inplane_code, self.plane_of_rings, self.bins_per_plane,
+                               self.n_bins, codes, self.state.counts)
+        if self.accumulate == "direct":
+            kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
+        else:
+            kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,
+                                     self.n_keys, self.key_counts, self.sorted_codes)
 
 
 def _column(arrays: dict, name: str, dtype) -> np.ndarray:
@@ -267,7 +279,7 @@ def _energy_window(energy_window, scanner, has_energy: bool):
 
 
 def bin_event_arrays(columns: dict, geometry: SinogramGeometry, *, frames=None, energy_window=True,
-                     state: BinningState | None = None) -> BinningState:
+                     state: BinningState | None = None, accumulate: str | None = None) -> BinningState:
     """Bin events held in memory.
 
     Parameters
@@ -284,6 +296,9 @@ def bin_event_arrays(columns: dict, geometry: SinogramGeometry, *, frames=None, 
         False: no energy selection; or an explicit window in keV (inclusive).
     state : BinningState, optional
         Add to this state (in place) instead of a new one.
+    accumulate : {"direct", "partitioned"}, optional
+        Kernel used to add events to the sinograms (same result; default
+        :data:`ACCUMULATE`).
 
     Returns
     -------
@@ -295,7 +310,7 @@ def bin_event_arrays(columns: dict, geometry: SinogramGeometry, *, frames=None, 
     if state.frames_s is not None and "time_ns" not in columns:
         raise TwinrayInputError("binning into time frames needs the time_ns column")
     has_energy = "energy_a_kev" in columns and "energy_b_kev" in columns
-    binner = _Binner(state, _energy_window(energy_window, geometry.scanner, has_energy))
+    binner = _Binner(state, _energy_window(energy_window, geometry.scanner, has_energy), accumulate)
     binner.add(columns)
     return state
 
@@ -337,8 +352,9 @@ def bin_events(events, geometry: SinogramGeometry | None = None, *, frames=None,
     Notes
     -----
     Decoding (pyarrow, in a thread) overlaps with the numba kernels, which
-    release the GIL. Events are partitioned by plane before they are added,
-    for cache locality.
+    release the GIL. The kernels first read the in-plane lookup table for a
+    whole batch in one tight loop (many cache misses in flight), then decide
+    bins and rejections with branch-free selects, then add the events.
 
     References
     ----------
