@@ -102,33 +102,60 @@ def binned_fan_em_sums(factor, measured_flat, model_flat, pair_ja, pair_jb, pair
 
 
 @njit(cache=True, nogil=True)
-def fan_sums_from_codes(codes, crystal_a, crystal_b, n, rings, radial_bins, inplane_bin, end1_is_a,
-                        fan_prompts, fan_delayed, table_prompts, table_delayed):
-    """Fan sums and (ring difference, radial) sums of the binned events of a batch.
+def fan_sums_batch(crystal_a, crystal_b, delayed, use_delayed, energy_a, energy_b, use_energy, e_lo, e_hi, n, rings,
+                   radial_bins, inplane_bin, end1_is_a, plane_of_rings, counts, fan_prompts, fan_delayed,
+                   table_prompts, table_delayed):
+    """Fan sums and (ring difference, radial) sums of a batch of events, with the accounting.
 
-    ``codes`` come from :func:`twinray._binning_kernels.classify_batch`
-    (``-1`` rejected, else ``(flat_bin << 1) | is_delayed`` for frame 0).
+    An event is counted where binning would put it: the rejection reasons
+    are tried in the order of data contract section 5 (invalid crystal,
+    energy window, no LOR, ring difference, radial field of view; a norm scan
+    has no time frame) and ``counts`` (ordered as
+    :data:`twinray.accounting.FIELDS`) gets one increment per row.
     """
-    for i in range(codes.shape[0]):
-        code = codes[i]
-        if code < 0:
-            continue
+    n_crystals = n * rings
+    for i in range(crystal_a.shape[0]):
+        counts[0] += 1
         ca = crystal_a[i]
         cb = crystal_b[i]
+        if ca < 0 or ca >= n_crystals or cb < 0 or cb >= n_crystals:
+            counts[3] += 1
+            continue
+        if use_energy:
+            ea = energy_a[i]
+            eb = energy_b[i]
+            if not (ea >= e_lo and ea <= e_hi and eb >= e_lo and eb <= e_hi):
+                counts[5] += 1
+                continue
         ra = ca // n
         rb = cb // n
         ja = ca - ra * n
         jb = cb - rb * n
+        inplane = inplane_bin[ja, jb]
+        if inplane == -1:
+            counts[6] += 1
+            continue
         if end1_is_a[ja, jb]:
-            dr = ra - rb + rings - 1
+            r1 = ra
+            r2 = rb
         else:
-            dr = rb - ra + rings - 1
-        radial = inplane_bin[ja, jb] % radial_bins
-        if code & 1:
+            r1 = rb
+            r2 = ra
+        if plane_of_rings[r1, r2] < 0:
+            counts[7] += 1
+            continue
+        if inplane < 0:
+            counts[8] += 1
+            continue
+        dr = r1 - r2 + rings - 1
+        radial = inplane % radial_bins
+        if use_delayed and delayed[i]:
+            counts[2] += 1
             fan_delayed[ca] += 1
             fan_delayed[cb] += 1
             table_delayed[dr, radial] += 1
         else:
+            counts[1] += 1
             fan_prompts[ca] += 1
             fan_prompts[cb] += 1
             table_prompts[dr, radial] += 1

@@ -46,7 +46,6 @@ import math
 
 import numpy as np
 
-from .._binning_kernels import classify_batch
 from ..accounting import FIELDS, Accounting
 from ..errors import TwinrayInputError
 from ..geometry import SinogramGeometry
@@ -54,7 +53,6 @@ from . import _kernels
 from .pairs import kernel_arguments, pair_product_sinogram, pair_ring_difference_mm, ring_difference_count
 
 SOURCE_SHAPES = ("flood", "cylinder", "rotating-line")
-_NO_TIME_LIMIT = np.iinfo(np.int64).max
 
 
 @dataclasses.dataclass(frozen=True)
@@ -201,7 +199,6 @@ def fan_sums_of_batch(columns: dict, geometry: SinogramGeometry, energy_window=N
     sc = geometry.scanner
     ca = np.ascontiguousarray(np.clip(np.asarray(columns["crystal_a"]), -1, np.iinfo(np.int32).max), np.int32)
     cb = np.ascontiguousarray(np.clip(np.asarray(columns["crystal_b"]), -1, np.iinfo(np.int32).max), np.int32)
-    n = len(ca)
     delayed = np.ascontiguousarray(columns["delayed"], np.bool_) if "delayed" in columns else np.zeros(0, np.bool_)
     use_energy = energy_window is not None
     if use_energy:
@@ -211,20 +208,15 @@ def fan_sums_of_batch(columns: dict, geometry: SinogramGeometry, energy_window=N
     else:
         ea = eb = np.zeros(0, np.float32)
         lo = hi = 0.0
-    codes = np.empty(n, np.int64)
-    counts = np.zeros((2, len(FIELDS)), np.int64)
+    counts = np.zeros(len(FIELDS), np.int64)
     inplane = np.ascontiguousarray(geometry.inplane_bin, dtype=np.int32)
     end1 = np.ascontiguousarray(geometry.inplane_end1_is_a, dtype=np.bool_)
     por = np.ascontiguousarray(geometry.plane_of_rings, dtype=np.int32)
-    bins_per_plane = geometry.views * geometry.radial_bins
-    classify_batch(ca, cb, np.zeros(0, np.int64), False, delayed, delayed.size > 0, ea, eb, use_energy,
-                   np.float32(lo), np.float32(hi), np.zeros(1, np.int64), np.full(1, _NO_TIME_LIMIT, np.int64),
-                   sc.crystals_per_ring, sc.n_crystals, inplane, end1, por, bins_per_plane, geometry.n_bins,
-                   codes, counts)
     out = empty_fan_sums(geometry)
-    _kernels.fan_sums_from_codes(codes, ca, cb, sc.crystals_per_ring, sc.rings, geometry.radial_bins, inplane,
-                                 end1, out.fan_prompts, out.fan_delayed, out.table_prompts, out.table_delayed)
-    return dataclasses.replace(out, accounting=Accounting.from_counts(counts[0] + counts[1]))
+    _kernels.fan_sums_batch(ca, cb, delayed, delayed.size > 0, ea, eb, use_energy, np.float32(lo), np.float32(hi),
+                            sc.crystals_per_ring, sc.rings, geometry.radial_bins, inplane, end1, por, counts,
+                            out.fan_prompts, out.fan_delayed, out.table_prompts, out.table_delayed)
+    return dataclasses.replace(out, accounting=Accounting.from_counts(counts))
 
 
 def stream_fan_sums(source, geometry: SinogramGeometry, batch_size: int = 1 << 20, progress=None) -> FanSums:

@@ -80,8 +80,9 @@ def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 
     -----
     Start: ``r_a = D_a / sqrt(sum D)`` from the fan sums ``D`` (exact when
     every crystal sees the same fan), then EM updates
-    ``r_a <- (share of the counts on a's fan) / sum_(b in fan a) r_b``; the
-    total of the model equals the total count after every update.
+    ``r_a <- (share of the counts on a's fan) / sum_(b in fan a) r_b``, each
+    followed by a common rescaling so the model total equals the total count
+    (a property of the ML solution; it stops the scale from oscillating).
     """
     data = np.ascontiguousarray(sinogram, np.float64).reshape(-1)
     total = data.sum()
@@ -99,6 +100,9 @@ def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 
         den = np.zeros(n_crystals)
         _kernels.binned_fan_em_sums(r, data, model, ja, jb, inplane, end1, n, rings, por, bins_per_plane, num, den)
         r = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+        # The simultaneous update overshoots the overall scale (scaling every r by c maps to 1/c);
+        # the ML solution reproduces the total count, so restore it.
+        r *= np.sqrt(total / max(pair_product_sinogram(geometry, r).sum(), 1e-300))
     return r
 
 

@@ -13,8 +13,9 @@ and read under the object:
 * the model of view ``v`` is a Gaussian in the radial position,
   ``a_v * exp(-(s - c_v)^2 / (2 sigma^2))``, centred on the ACF-weighted
   centre ``c_v`` of the object in that view; one ``sigma`` per plane is
-  chosen from a grid (0.5 to 4 object half-widths) by least squares over all
-  the plane's tails, each ``a_v`` in closed form, and the ``a_v`` are
+  chosen by least squares over all the plane's tails (a grid of 0.5 to 4
+  object half-widths, then a bounded 1-D refinement), each ``a_v`` in
+  closed form, and the ``a_v`` are
   smoothed over neighbouring views to reduce noise;
 * the fitted scatter is divided by ``norm`` to give expected raw counts.
 
@@ -39,7 +40,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
-from scipy import ndimage
+from scipy import ndimage, optimize
 
 from ..errors import TwinrayInputError
 from ..geometry import SinogramGeometry
@@ -93,17 +94,29 @@ def _fit_plane(y, acf, s, options: TailFitOptions):
     enough = tails.sum(axis=1) >= options.min_tail_bins
     if not enough.any():
         return np.zeros_like(y), tails, False
-    best = None
-    for sigma in half_width * np.geomspace(0.5, 4.0, 15):
+    y_tail = np.where(tails, y, 0.0)
+
+    def fit_sigma(sigma):
         shape = np.exp(-0.5 * ((s_row - centre[:, None]) / sigma) ** 2)
         gt = np.where(tails, shape, 0.0)
         denom = (gt * gt).sum(axis=1)
-        amp = np.where(denom > 0, (gt * np.where(tails, y, 0.0)).sum(axis=1) / np.where(denom > 0, denom, 1.0), 0.0)
+        amp = np.where(denom > 0, (gt * y_tail).sum(axis=1) / np.where(denom > 0, denom, 1.0), 0.0)
         amp = np.clip(amp, 0.0, None)
         resid = (np.where(tails, y - amp[:, None] * shape, 0.0) ** 2)[enough].sum()
-        if best is None or resid < best[0]:
-            best = (resid, amp, shape)
-    _, amp, shape = best
+        return resid, amp, shape
+
+    # Coarse grid of widths, then a bounded 1-D refinement around the best one.
+    grid = half_width * np.geomspace(0.5, 4.0, 15)
+    resid = [fit_sigma(sigma)[0] for sigma in grid]
+    k = int(np.argmin(resid))
+    lo, hi = np.log(grid[max(k - 1, 0)]), np.log(grid[min(k + 1, len(grid) - 1)])
+    if hi > lo:
+        best = optimize.minimize_scalar(lambda t: fit_sigma(np.exp(t))[0], bounds=(lo, hi), method="bounded",
+                                        options={"xatol": 1e-4})
+        sigma = float(np.exp(best.x)) if best.fun <= resid[k] else grid[k]
+    else:
+        sigma = grid[k]
+    _, amp, shape = fit_sigma(sigma)
     # Views with too few tail bins: interpolate their amplitude from the others.
     if not enough.all():
         idx = np.arange(views)
