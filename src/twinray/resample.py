@@ -43,7 +43,7 @@ import numpy as np
 from . import _binning_kernels as binning_kernels
 from . import _resample_kernels as kernels
 from .accounting import Accounting
-from .binning import _energy_window, empty_state, seconds_to_ns
+from .binning import _Binner, _column, _energy_window, empty_state
 from .errors import TwinrayInputError
 from .events import DEFAULT_BATCH_SIZE, EventSource, iter_event_batches, open_events
 from .geometry import SinogramGeometry, sinogram_geometry
@@ -194,26 +194,15 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     group = max(1, min(n_streams, int(memory_bytes // max(per_stream, 1))))
 
     frames = None if frame is None else [tuple(frame)]
-    counting = empty_state(geometry, frames, with_delayed=False)
+    counting = empty_state(geometry, frames, with_delayed=with_delayed)
     window = _energy_window(energy_window, geometry.scanner, source.has_energy)
     columns = ["crystal_a", "crystal_b"]
-    use_time = frames is not None
-    if use_time:
+    if frames is not None:
         columns.insert(0, "time_ns")
     if with_delayed:
         columns.append("delayed")
     if window is not None:
         columns += ["energy_a_kev", "energy_b_kev"]
-    lo, hi = window if window is not None else (0.0, 0.0)
-    starts = np.array([seconds_to_ns(frame[0])] if use_time else [0], np.int64)
-    ends = np.array([seconds_to_ns(frame[1])] if use_time else [np.iinfo(np.int64).max], np.int64)
-    inplane = np.ascontiguousarray(geometry.inplane_bin, dtype=np.int32)
-    end1 = np.ascontiguousarray(geometry.inplane_end1_is_a, dtype=np.bool_)
-    rings = np.ascontiguousarray(geometry.plane_of_rings, dtype=np.int32)
-    sc = geometry.scanner
-    empty_i64 = np.zeros(0, np.int64)
-    empty_bool = np.zeros(0, np.bool_)
-    empty_f32 = np.zeros(0, np.float32)
 
     prompts = np.zeros((n_streams,) + geometry.shape, np.int32)
     delayed = np.zeros((n_streams,) + geometry.shape, np.int32) if with_delayed else None
@@ -226,28 +215,19 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
         p_flat = np.zeros(geometry.n_bins * m, np.int32)
         d_flat = np.zeros(geometry.n_bins * m if with_delayed else 1, np.int32)
         group_totals = np.zeros((m, 2), np.int64)
-        counts = np.zeros_like(counting.counts)
-        codes = np.zeros(0, np.int64)
+        # The ordinary binner classifies (same lookup tables, same accounting); only the
+        # accumulation differs.
+        classifier = _Binner(empty_state(geometry, frames, with_delayed=with_delayed), window)
         for first_row, arrays in iter_event_batches(source, columns, batch_size, prefetch=2):
-            n = len(arrays["crystal_a"])
-            if len(codes) < n:
-                codes = np.empty(n, np.int64)
-            c = codes[:n]
-            d = arrays["delayed"] if with_delayed else empty_bool
-            binning_kernels.classify_batch(
-                arrays["crystal_a"], arrays["crystal_b"], arrays["time_ns"] if use_time else empty_i64, use_time,
-                d, with_delayed, arrays["energy_a_kev"] if window else empty_f32,
-                arrays["energy_b_kev"] if window else empty_f32, window is not None, np.float32(lo),
-                np.float32(hi), starts, ends, sc.crystals_per_ring, sc.n_crystals, inplane, end1, rings,
-                geometry.views * geometry.radial_bins, geometry.n_bins, c, counts)
-            kernels.accumulate_weighted(c, np.int64(first_row), keys[g0:g1], 0 if mode == "bootstrap" else 1,
+            codes = _classify(classifier, arrays)
+            kernels.accumulate_weighted(codes, np.int64(first_row), keys[g0:g1], 0 if mode == "bootstrap" else 1,
                                         stream_fraction[g0:g1], kernels.POISSON1_CDF, p_flat, d_flat,
                                         group_totals)
             if progress is not None:
-                progress(n)
+                progress(len(codes))
         passes += 1
         if g0 == 0:
-            counting.counts[:] = counts
+            counting.counts[:] = classifier.state.counts
         prompts[g0:g1] = p_flat.reshape(geometry.n_bins, m).T.reshape((m,) + geometry.shape)
         if with_delayed:
             delayed[g0:g1] = d_flat.reshape(geometry.n_bins, m).T.reshape((m,) + geometry.shape)
@@ -256,6 +236,32 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     return ReplicateState(geometry=geometry, frame_s=frame_s, mode=mode, seed=int(seed),
                           fractions=stream_fraction, replicate=stream_replicate, prompts=prompts,
                           delayed=delayed, totals=totals, accounting=counting.accounting(0), passes=passes)
+
+
+def _classify(binner, arrays: dict) -> np.ndarray:
+    """Codes of one batch (flat bin << 1 | delayed, or -1) from the ordinary binning kernel.
+
+    Counts every row in ``binner.state.counts`` exactly as :func:`twinray.binning.bin_events`
+    does; the lookup-table logic lives only in :mod:`twinray._binning_kernels`.
+    """
+    ca = _column(arrays, "crystal_a", np.int32)
+    cb = _column(arrays, "crystal_b", np.int32)
+    n = len(ca)
+    t = _column(arrays, "time_ns", np.int64) if binner.use_time else binner.no_time
+    d = _column(arrays, "delayed", np.bool_) if "delayed" in arrays else binner.no_flag
+    if binner.use_energy:
+        ea = _column(arrays, "energy_a_kev", np.float32)
+        eb = _column(arrays, "energy_b_kev", np.float32)
+    else:
+        ea = eb = binner.no_energy
+    if len(binner.codes) < n:
+        binner.codes = np.empty(n, np.int64)
+    codes = binner.codes[:n]
+    binning_kernels.classify_batch(ca, cb, t, binner.use_time, d, d.size > 0, ea, eb, binner.use_energy,
+                                   binner.e_lo, binner.e_hi, binner.starts, binner.ends, binner.g.scanner.n_crystals,
+                                   binner.ring_of, binner.position_of, binner.inplane_code, binner.plane_of_rings,
+                                   binner.bins_per_plane, binner.n_bins, codes, binner.state.counts)
+    return codes
 
 
 def replicate_weights(seed: int, mode: str, fractions, replicates: int, first_row: int, n_rows: int) -> np.ndarray:
@@ -297,3 +303,317 @@ def expected_relative_noise(counts) -> np.ndarray:
     """``1/sqrt(counts)``: relative noise of a Poisson count (for plots of noise against counts)."""
     counts = np.asarray(counts, dtype=np.float64)
     return np.divide(1.0, np.sqrt(counts), out=np.full_like(counts, np.nan), where=counts > 0)
+
+
+def _region_masks(regions, shape, affine, mean_image):
+    """Named boolean masks: the given spheres, or one "object" region from the mean image."""
+    from .tac import region_mask
+
+    if regions:
+        masks = {}
+        for region in regions:
+            mask = region_mask(shape, affine, region)
+            if not mask.any():
+                raise TwinrayInputError(f"region {region.describe()} contains no voxel centre of the image")
+            masks[region.name] = mask
+        return masks, [{"name": r.name, "definition": r.describe(), "voxels": int(masks[r.name].sum())}
+                       for r in regions]
+    # Without regions: the voxels above a quarter of the 99th percentile of the mean image
+    # (the object, robust to a few hot voxels).
+    level = 0.25 * float(np.percentile(mean_image, 99)) if mean_image.size else 0.0
+    mask = mean_image > level if level > 0 else np.zeros(mean_image.shape, bool)
+    if not mask.any():
+        raise TwinrayInputError("the mean image is zero everywhere; no region to measure noise in")
+    return {"object": mask}, [{"name": "object", "definition": "mean image > 0.25 x its 99th percentile",
+                               "voxels": int(mask.sum())}]
+
+
+def region_noise(images: np.ndarray, mask: np.ndarray) -> dict:
+    """Noise statistics of one region over replicates.
+
+    Parameters
+    ----------
+    images : ndarray, shape (replicates, x, y, z)
+    mask : ndarray of bool, shape (x, y, z)
+
+    Returns
+    -------
+    dict
+        ``mean`` (regional mean of the mean image), ``voxel_std`` and
+        ``voxel_cov`` (regional means of the voxel-wise std and of std/mean),
+        ``roi_mean_std`` and ``roi_mean_cov`` (spread over replicates of the
+        regional mean, the noise of a region measurement), all with ddof = 1.
+    """
+    values = images[:, mask].astype(np.float64)          # (replicates, voxels)
+    mean_v = values.mean(axis=0)
+    std_v = values.std(axis=0, ddof=1)
+    roi = values.mean(axis=1)
+    m = float(mean_v.mean())
+    return {
+        "mean": m,
+        "voxel_std": float(std_v.mean()),
+        "voxel_cov": float(np.mean(np.divide(std_v, mean_v, out=np.zeros_like(std_v), where=mean_v > 0))),
+        "roi_mean_std": float(roi.std(ddof=1)),
+        "roi_mean_cov": float(roi.std(ddof=1) / m) if m > 0 else 0.0,
+    }
+
+
+def noise_slope(counts, noise) -> float | None:
+    """Log-log slope of noise against counts (-0.5 for Poisson-limited noise); None with < 2 levels."""
+    counts = np.asarray(counts, dtype=np.float64)
+    noise = np.asarray(noise, dtype=np.float64)
+    ok = (counts > 0) & (noise > 0)
+    if ok.sum() < 2:
+        return None
+    return float(np.polyfit(np.log(counts[ok]), np.log(noise[ok]), 1)[0])
+
+
+def plot_noise_against_counts(path, levels: list, region_names: list, title: str = "") -> None:
+    """PNG of regional noise (CoV of voxels, and of the regional mean) against counts, log-log."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .atomic import atomic_path
+    from .tac import OKABE_ITO
+
+    counts = np.array([lv["mean_prompts"] for lv in levels], dtype=np.float64)
+    fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
+    for r, name in enumerate(region_names):
+        colour = OKABE_ITO[r % len(OKABE_ITO)]
+        voxel = np.array([lv["regions"][name]["voxel_cov"] for lv in levels]) * 100
+        roi = np.array([lv["regions"][name]["roi_mean_cov"] for lv in levels]) * 100
+        ax.plot(counts, voxel, "o-", color=colour, label=f"{name}: voxel CoV")
+        ax.plot(counts, roi, "s--", color=colour, label=f"{name}: CoV of regional mean", markerfacecolor="none")
+        if len(counts) and voxel[-1] > 0:
+            ref = voxel[np.argmax(counts)] * np.sqrt(counts.max() / counts)
+            ax.plot(counts, ref, ":", color="0.4", linewidth=1,
+                    label="1/sqrt(counts) (Poisson)" if r == 0 else None)
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("prompts per replicate (counts)")
+    ax.set_ylabel("coefficient of variation (%)")
+    ax.set_title(title or "image noise against counts")
+    ax.grid(True, which="both", alpha=0.3)
+    ax.legend(frameon=False, fontsize=8)
+    fig.tight_layout()
+    try:
+        with atomic_path(path, suffix=".png") as tmp:
+            fig.savefig(tmp, format="png")
+    finally:
+        plt.close(fig)
+
+
+@dataclasses.dataclass(frozen=True)
+class ResampleResult:
+    """What :func:`make_resample` did.
+
+    Attributes
+    ----------
+    outputs : list of Path
+    summary : dict
+        The content of ``summary.json``.
+    accounting : Accounting
+    warnings : tuple of str
+    timings_s : dict
+    """
+
+    outputs: list
+    summary: dict
+    accounting: Accounting
+    warnings: tuple
+    timings_s: dict
+
+
+def make_resample(events, output_dir, *, mode: str = "bootstrap", replicates: int = 20, fractions=None,
+                  seed: int = 0, frame=None, truncate: bool = False, scanner=None, rebin: str = "none",
+                  correction_options=None, norm_path=None, mu_path=None, singles_path=None, recon_options=None,
+                  regions=(), workers: int | None = None, scheduler: str | None = None,
+                  batch_size: int = DEFAULT_BATCH_SIZE, memory_bytes: int = DEFAULT_MEMORY_BYTES,
+                  progress=None) -> ResampleResult:
+    """Count-level noise study: resample, correct and reconstruct every replicate, summarise.
+
+    Parameters
+    ----------
+    events : path-like or EventSource
+    output_dir : path-like
+        Folder for ``mean.nii.gz``, ``std.nii.gz``, ``cov.nii.gz`` (each with
+        a sidecar), ``summary.json`` and ``noise_vs_counts.png``. With several
+        fractions the images are 4-D, one volume per fraction in the order given.
+    mode : {"bootstrap", "thin"}
+    replicates : int
+        Per fraction, >= 2.
+    fractions : sequence of float, optional
+        Thinning probabilities (``mode="thin"``).
+    seed : int
+    frame : (start_s, end_s) or str, optional
+        Time window (default the whole acquisition); checked against the data.
+    truncate : bool
+        Clip a frame past the data's end.
+    scanner, rebin, correction_options, norm_path, mu_path, singles_path, recon_options
+        As for ``twinray sinogram`` and ``twinray reconstruct``; the same for
+        every replicate.
+    regions : sequence of SphereRegion
+        Where to measure noise; default one "object" region from the mean image.
+    workers, scheduler
+        Parallel reconstruction (see :func:`twinray.parallel.map_tasks`).
+    batch_size, memory_bytes
+    progress : callable, optional
+        ``progress(stage, done, total)``.
+
+    Returns
+    -------
+    ResampleResult
+
+    Notes
+    -----
+    A thinned replicate is reconstructed as a scan of ``P`` times the frame
+    duration; its decay-correction factor is that of the real frame, so the
+    mean image estimates the same concentration as the full scan.
+    """
+    import json
+    import time
+    from pathlib import Path
+
+    from .atomic import atomic_path, refuse_overwriting_inputs
+    from .corrections.apply import CorrectionOptions, prepare_corrections
+    from .decay import frame_decay_factor
+    from .dynamic import FrameTask, frame_image
+    from .images import write_image
+    from .isotopes import get_isotope
+    from .parallel import map_tasks
+    from .reconstruct.pipeline import ReconOptions
+    from .sinogram import parse_frame, resolve_frame
+
+    t0 = time.perf_counter()
+    fractions = check_resampling(mode, replicates, fractions)
+    correction_options = correction_options or CorrectionOptions()
+    recon_options = recon_options or ReconOptions()
+    source = events if isinstance(events, EventSource) else open_events(events, scanner)
+    if source.num_rows == 0:
+        raise TwinrayInputError(f"events {source.path} contain no events; nothing to resample")
+    if isinstance(frame, str):
+        frame = parse_frame(frame)
+    frame_s = resolve_frame(source, frame, truncate)
+    output_dir = Path(output_dir)
+    names = ("mean.nii.gz", "std.nii.gz", "cov.nii.gz", "summary.json", "noise_vs_counts.png")
+    scanner_path = scanner if scanner is not None and not hasattr(scanner, "crystals_per_ring") else None
+    for name in names:
+        refuse_overwriting_inputs(output_dir / name, [source.path, *source.paths, scanner_path, norm_path, mu_path,
+                                                      singles_path])
+    geometry = sinogram_geometry(source.scanner, rebin)
+    inputs = prepare_corrections(geometry, correction_options, norm_path=norm_path, mu_path=mu_path,
+                                 singles_path=singles_path, frames_s=[frame_s])
+    warnings = []
+    iso = None
+    if source.metadata.get("isotope"):
+        iso = get_isotope(str(source.metadata["isotope"]), f"events {source.path} metadata 'isotope'")
+    start_s, end_s = frame_s
+    duration = end_s - start_s
+    dcf = (float(frame_decay_factor(iso.half_life_s, start_s, duration, correction_options.decay_reference_s))
+           if iso is not None else None)
+    if iso is None:
+        warnings.append("the events name no isotope: images are not decay-corrected")
+    t1 = time.perf_counter()
+
+    total = source.num_rows
+    report = (lambda n: progress("bin", n, total)) if progress is not None else None
+    state = bin_replicates(source, geometry, mode=mode, replicates=replicates, fractions=fractions, seed=seed,
+                           frame=None if frame is None else frame_s, batch_size=batch_size,
+                           memory_bytes=memory_bytes, progress=report)
+    if state.passes > 1:
+        warnings.append(f"the replicates did not fit the memory budget together; the events were read "
+                        f"{state.passes} times")
+    acc = state.accounting
+    if acc.read != total:
+        raise TwinrayInputError(f"events {source.path}: read {acc.read} rows but the files declare {total}")
+    if acc.binned == 0:
+        raise TwinrayInputError(f"no event of {source.path} could be binned in {start_s:g}:{end_s:g} s")
+    t2 = time.perf_counter()
+
+    tasks = [FrameTask(index=0, prompts=state.prompts[i],
+                       delayed=None if state.delayed is None else state.delayed[i],
+                       frame_start_s=start_s, frame_duration_s=duration * float(state.fractions[i]),
+                       decay_factor=dcf)
+             for i in range(state.n_streams)]
+    results = map_tasks(frame_image, tasks,
+                        {"geometry": geometry, "correction_options": correction_options,
+                         "correction_inputs": inputs, "recon_options": recon_options,
+                         "isotope": iso.name if iso is not None else None},
+                        workers=workers, scheduler=scheduler,
+                        on_done=(lambda: progress("reconstruct", 1, len(tasks))) if progress is not None else None)
+    t3 = time.perf_counter()
+    for r in results:
+        for note in r["notes"]:
+            if note not in warnings:
+                warnings.append(note)
+    images = np.stack([r["image"] for r in results])       # (streams, x, y, z)
+    affine = results[0]["affine"]
+    first_side = results[0]["sidecar"]
+    units = first_side.get("Units", "")
+
+    means, stds, covs, levels = [], [], [], []
+    masks = region_info = None
+    for p in fractions:
+        sel = state.fractions == p
+        mean, std, cov = voxel_statistics(images[sel])
+        means.append(mean)
+        stds.append(std)
+        covs.append(cov)
+        if masks is None:
+            masks, region_info = _region_masks(list(regions), mean.shape, affine, mean)
+        totals = state.totals[sel]
+        levels.append({
+            "fraction": p,
+            "effective_duration_s": duration * p,
+            "mean_prompts": float(totals[:, 0].mean()),
+            "mean_delayed": float(totals[:, 1].mean()) if state.delayed is not None else None,
+            "prompts_per_replicate": [int(v) for v in totals[:, 0]],
+            "regions": {name: region_noise(images[sel], mask) for name, mask in masks.items()},
+        })
+    slopes = {name: {"voxel_cov": noise_slope([lv["mean_prompts"] for lv in levels],
+                                              [lv["regions"][name]["voxel_cov"] for lv in levels]),
+                     "roi_mean_cov": noise_slope([lv["mean_prompts"] for lv in levels],
+                                                 [lv["regions"][name]["roi_mean_cov"] for lv in levels])}
+              for name in masks}
+
+    def stack(volumes):
+        return volumes[0] if len(volumes) == 1 else np.stack(volumes, axis=-1)
+
+    common = {"mode": mode, "replicates": int(replicates), "fractions": list(fractions), "seed": int(seed),
+              "frame_s": [start_s, end_s], "events": str(source.path), "accounting": acc.to_dict(),
+              "volume_axis": "fraction" if len(fractions) > 1 else None, "recon": first_side.get("twinray", {})}
+    base = {k: first_side[k] for k in ("ReconMethodName", "ReconMethodParameterLabels", "ReconMethodParameterUnits",
+                                       "ReconMethodParameterValues", "ReconFilterType", "ReconFilterSize",
+                                       "AttenuationCorrection", "ImageDecayCorrected", "ImageDecayCorrectionTime",
+                                       "DecayCorrectionFactor", "TracerRadionuclide") if k in first_side}
+    base.update({"FrameTimesStart": [start_s], "FrameDuration": [duration], "AcquisitionMode": "list mode"})
+    output_dir.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name, volumes, unit, what in (("mean.nii.gz", means, units, "voxel-wise mean over replicates"),
+                                      ("std.nii.gz", stds, units, "voxel-wise standard deviation over replicates "
+                                                                  "(ddof = 1)"),
+                                      ("cov.nii.gz", covs, "1", "coefficient of variation std/mean "
+                                                                "(0 where the mean is <= 0)")):
+        side = {**base, "Units": unit, "twinray": {**common, "statistic": what}}
+        written += write_image(output_dir / name, stack(volumes), affine, side)
+    summary = {**common, "units": units, "effective_duration_s": [duration * p for p in fractions],
+               "regions": region_info, "levels": levels,
+               "noise_vs_counts_slope": slopes if len(fractions) > 1 else None,
+               "notes": ["roi_mean_cov: standard deviation over replicates of the regional mean divided by it",
+                         "voxel_cov: regional mean of the voxel-wise std/mean",
+                         "thinned replicates are reconstructed as scans of P times the duration"],
+               "warnings": warnings}
+    plot_path = output_dir / "noise_vs_counts.png"
+    plot_noise_against_counts(plot_path, levels, list(masks),
+                              title=f"{mode}: noise against counts ({replicates} replicates per level)")
+    summary_path = output_dir / "summary.json"
+    summary["outputs"] = [str(p) for p in written] + [str(plot_path), str(summary_path)]
+    with atomic_path(summary_path, suffix=".json") as tmp:
+        tmp.write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
+    t4 = time.perf_counter()
+    return ResampleResult(outputs=written + [plot_path, summary_path], summary=summary, accounting=acc,
+                          warnings=tuple(warnings),
+                          timings_s={"prepare": round(t1 - t0, 4), "bin": round(t2 - t1, 4),
+                                     "reconstruct": round(t3 - t2, 4), "write": round(t4 - t3, 4)})
