@@ -323,9 +323,10 @@ def slices_figure(volume, affine, units: str = "", title: str = "", point=None, 
     point = tuple(vol.shape[a] - 1 - point[a] if flipped[a] else point[a] for a in range(3))
     vol, centres, steps = _oriented(vol, affine)
     lo, hi = vrange if vrange is not None else display_range(vol)
-    fig = _figure(12.0, 4.0)
-    axes = fig.subplots(1, 3, gridspec_kw={"width_ratios": [
-        max(vol.shape[0] * steps[0], 1.0), max(vol.shape[0] * steps[0], 1.0), max(vol.shape[1] * steps[1], 1.0)]})
+    # Transaxial slice large on the left; coronal above sagittal on the right.
+    fig = _figure(10.5, 5.0)
+    grid = fig.add_gridspec(2, 2, width_ratios=[1.0, 1.0])
+    axes = [fig.add_subplot(grid[:, 0]), fig.add_subplot(grid[0, 1]), fig.add_subplot(grid[1, 1])]
     im = None
     for ax, (name, data, extent, (xl, yl), where, cross) in zip(axes, _slices(vol, centres, steps, point)):
         im = ax.imshow(data, origin="lower", extent=extent, cmap=cmap, vmin=lo, vmax=hi,
