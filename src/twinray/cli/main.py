@@ -19,6 +19,7 @@ COMMANDS = {
     "inspect": "twinray.cli.inspect_cmd:inspect_command",
     "sinogram": "twinray.cli.sinogram:sinogram_command",
     "dynamic": "twinray.cli.dynamic:dynamic_command",
+    "resample": "twinray.cli.resample:resample_command",
     "tac": "twinray.cli.tac:tac",
     "simulate": "twinray.cli.simulate:simulate_command",
 }
