@@ -228,7 +228,9 @@ def _why_nothing_binned(acc: Accounting) -> str:
 
 
 def make_sinogram(events, output, *, scanner=None, frame=None, rebin: str = "none",
-                  batch_size: int = DEFAULT_BATCH_SIZE, truncate: bool = False, progress=None) -> SinogramResult:
+                  batch_size: int = DEFAULT_BATCH_SIZE, truncate: bool = False, progress=None,
+                  corrections=None, norm=None, mu=None, singles=None,
+                  decay_reference: str = "start") -> SinogramResult:
     """Bin an event study into a sinogram file (prompts, delayed, accounting).
 
     Parameters
@@ -249,6 +251,22 @@ def make_sinogram(events, output, *, scanner=None, frame=None, rebin: str = "non
         Clip a frame that runs past the data's ``duration_s``.
     progress : callable, optional
         ``progress(rows_done_in_batch, total_rows)`` after every batch.
+    corrections : CorrectionOptions, optional
+        Randoms, scatter and dead-time choices
+        (:class:`twinray.corrections.apply.CorrectionOptions`; its
+        ``randoms`` may also be ``"auto"``: delayed when the events have a
+        delayed channel, else none). When this or any of ``norm``, ``mu``,
+        ``singles`` is given, the file also holds ``randoms``, ``scatter``,
+        ``norm``, ``acf`` and ``corrected`` (data contract section 3) and the
+        frame's ``decay_correction_factor``; otherwise only the binned data.
+    norm : path-like, optional
+        NORM.h5 from ``twinray normalize`` (refused if made for another geometry).
+    mu : path-like, optional
+        mu-map NIfTI in 1/cm at 511 keV, scanner frame.
+    singles : path-like, optional
+        Singles Parquet file (randoms from singles, dead time).
+    decay_reference : {"start", "injection"}
+        Time the decay-correction factor refers to.
 
     Returns
     -------
@@ -263,13 +281,33 @@ def make_sinogram(events, output, *, scanner=None, frame=None, rebin: str = "non
     t0 = time.perf_counter()
     source = events if isinstance(events, EventSource) else open_events(events, scanner)
     scanner_path = scanner if scanner is not None and not hasattr(scanner, "crystals_per_ring") else None
-    refuse_overwriting_inputs(output, [source.path, *source.paths, scanner_path])
+    refuse_overwriting_inputs(output, [source.path, *source.paths, scanner_path, norm, mu, singles])
     if isinstance(frame, str):
         frame = parse_frame(frame)
     if source.num_rows == 0:
         raise TwinrayInputError(f"events {source.path} contain no events; nothing to bin")
     geometry = sinogram_geometry(source.scanner, rebin)
     frame_s = resolve_frame(source, frame, truncate)
+    # Corrections are prepared before binning, so a bad norm file or mu-map stops the run early.
+    want_corrections = corrections is not None or any(p is not None for p in (norm, mu, singles))
+    t_prep = 0.0
+    if want_corrections:
+        from .corrections.apply import CorrectionOptions, prepare_corrections
+        from .dynamic import decay_reference_s
+
+        corrections = corrections or CorrectionOptions()
+        if corrections.randoms == "auto":
+            corrections = dataclasses.replace(corrections, randoms="delayed" if source.has_delayed else "none")
+        corrections = dataclasses.replace(corrections,
+                                          decay_reference_s=decay_reference_s(source.metadata, decay_reference))
+        if corrections.randoms == "delayed" and not source.has_delayed:
+            raise TwinrayInputError(f"--randoms delayed: events {source.path} have no delayed column; "
+                                    "use --randoms singles (with --singles) or --randoms none")
+        t_prep = time.perf_counter()
+        correction_inputs = prepare_corrections(geometry, corrections, norm_path=norm, mu_path=mu,
+                                                singles_path=singles,
+                                                frames_s=None if frame_s is None else [frame_s])
+        t_prep = time.perf_counter() - t_prep
     t1 = time.perf_counter()
     total = source.num_rows
     report = (lambda n: progress(n, total)) if progress is not None else None
@@ -288,8 +326,21 @@ def make_sinogram(events, output, *, scanner=None, frame=None, rebin: str = "non
             raise TwinrayInputError(f"no event of {source.path} could be binned{_why_nothing_binned(acc)}")
     content = binned_content(state, 0, frame_s=frame_s, source=source,
                              attrs={"events": str(source.path)})
+    timings = {"open": round(t1 - t0 - t_prep, 4), "bin": round(t2 - t1, 4)}
+    if want_corrections:
+        from .corrections.apply import apply_corrections
+
+        t_corr = time.perf_counter()
+        corrected = apply_corrections(content.arrays["prompts"], content.arrays.get("delayed"), geometry,
+                                      corrections, correction_inputs, frame_index=0,
+                                      frame_start_s=content.frame_start_s, frame_duration_s=content.frame_duration_s,
+                                      isotope=source.metadata.get("isotope"))
+        content = content.with_arrays(**corrected.datasets).with_attrs(**corrected.attrs)
+        warnings.extend(corrected.notes)
+        timings["corrections"] = round(t_prep + time.perf_counter() - t_corr, 4)
+    t2 = time.perf_counter()
     path = write_sinogram_content(output, content)
     t3 = time.perf_counter()
+    timings["write"] = round(t3 - t2, 4)
     return SinogramResult(output=Path(path), content=content, warnings=tuple(warnings),
-                          timings_s={"open": round(t1 - t0, 4), "bin": round(t2 - t1, 4),
-                                     "write": round(t3 - t2, 4)}, source=source)
+                          timings_s=timings, source=source)

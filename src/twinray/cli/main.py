@@ -22,6 +22,7 @@ COMMANDS = {
     "resample": "twinray.cli.resample:resample_command",
     "tac": "twinray.cli.tac:tac",
     "simulate": "twinray.cli.simulate:simulate_command",
+    "normalize": "twinray.cli.normalize:normalize_command",
 }
 
 

@@ -38,7 +38,8 @@ class CorrectionOptions:
 
     Attributes
     ----------
-    randoms : {"delayed", "singles", "none"}
+    randoms : {"delayed", "singles", "none", "auto"}
+        ``"auto"``: delayed when the frame has delayed events, else none.
     scatter : {"none", "tail-fit"}
     deadtime_ns : float
         Dead time per single event, ns; 0 = no dead-time correction.
@@ -61,7 +62,7 @@ class CorrectionOptions:
     tail_fit: TailFitOptions = TailFitOptions()
 
     def __post_init__(self):
-        if self.randoms not in RANDOMS_METHODS:
+        if self.randoms not in RANDOMS_METHODS + ("auto",):
             raise TwinrayInputError(f"unknown randoms method {self.randoms!r}; choose {', '.join(RANDOMS_METHODS)}")
         if self.scatter not in SCATTER_METHODS:
             raise TwinrayInputError(f"unknown scatter method {self.scatter!r}; choose {', '.join(SCATTER_METHODS)}")
@@ -230,7 +231,12 @@ def apply_corrections(prompts, delayed, geometry: SinogramGeometry, options: Cor
         rates = np.asarray(inputs.singles_rate_cps)[frame_index]
 
     # Randoms.
-    if options.randoms == "delayed":
+    method = options.randoms
+    if method == "auto":
+        method = "delayed" if delayed is not None and np.asarray(delayed).sum() > 0 else "none"
+        if method == "none" and prompts.sum() > 0:
+            notes.append("no delayed events: no randoms correction (--randoms auto)")
+    if method == "delayed":
         if delayed is None:
             raise TwinrayInputError("--randoms delayed: the events have no delayed column; "
                                     "use --randoms singles (with --singles) or --randoms none")
@@ -240,7 +246,7 @@ def apply_corrections(prompts, delayed, geometry: SinogramGeometry, options: Cor
                                     f"{frame_start_s:g} s + {frame_duration_s:g} s; "
                                     "use --randoms singles (with --singles) or --randoms none")
         randoms = randoms_from_delayed(delayed, geometry, options.randoms_iterations)
-    elif options.randoms == "singles":
+    elif method == "singles":
         if rates is None:
             raise TwinrayInputError("--randoms singles needs a singles file (--singles FILE)")
         randoms = randoms_from_singles(rates, geometry, frame_duration_s)
@@ -280,10 +286,10 @@ def apply_corrections(prompts, delayed, geometry: SinogramGeometry, options: Cor
         "randoms_fraction": float(randoms.sum()) / total if total > 0 else 0.0,
         "scatter_fraction": float(scatter.sum()) / net if net > 0 else 0.0,
         "corrections": {
-            "randoms": options.randoms,
+            "randoms": method,
             "randoms_method": {"delayed": "delayed window, fan-sum ML crystal factors (Casey & Hoffman 1986)",
                                "singles": "2*tau*S_a*S_b*T from singles rates",
-                               "none": "none"}[options.randoms],
+                               "none": "none"}[method],
             "scatter": options.scatter,
             "norm": inputs.norm_path or "axial compression only (1 / crystal pairs per bin)",
             "attenuation": inputs.mu_path or "none",
