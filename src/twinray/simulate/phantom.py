@@ -518,11 +518,12 @@ def _uniform_in_shape(shape: Shape, n, rng):
     return cx + u * cr - v * sr, cy + u * sr + v * cr, cz + w
 
 
-def rasterize(shapes, shape, affine, time_s: float = 0.0, supersample: int = 3) -> tuple:
+def rasterize(shapes, shape, affine, time_s: float = 0.0, supersample: int = 4) -> tuple:
     """Activity (Bq/mL) and mu (1/cm) images of an analytic phantom.
 
     Each voxel holds the mean over ``supersample**3`` points spread evenly in
-    it (partial-volume averaging), with the replacement rule of overlapping
+    it (partial-volume averaging; an even ``supersample`` keeps the points off
+    voxel centres, where shape boundaries often fall), with the replacement rule of overlapping
     shapes. Activity includes the time-activity curve at ``time_s`` but not
     radioactive decay.
 

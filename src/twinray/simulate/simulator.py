@@ -212,9 +212,9 @@ class _Source:
     voxel: np.ndarray
     voxel_cdf: np.ndarray | None
     voxel_total_bq: float
-    activity_image: np.ndarray
-    mu_image: np.ndarray
-    image_affine: np.ndarray
+    activity_image: np.ndarray | None
+    mu_image: np.ndarray | None
+    image_affine: np.ndarray | None
     shape_table: list
 
 
@@ -249,8 +249,6 @@ def _prepare_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOptions)
             tac_values[i, :k] = sh.tac_values
             tac_len[i] = k
     mode = 1 if (physics.attenuation and np.any(mus > 0)) else 0
-    img_shape, affine = truth_grid(scanner)
-    activity_img, mu_img = rasterize(shapes, img_shape, affine, time_s=0.0)
     volumes = visible_volumes_ml(shapes)
     table = []
     for i, sh in enumerate(shapes):
@@ -263,8 +261,9 @@ def _prepare_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOptions)
             "tac": None if sh.tac_times_s is None else {"times_s": list(sh.tac_times_s),
                                                         "values": list(sh.tac_values)},
         })
+    # the truth images are rasterized only when they are written
     return _Source(mode, kinds, params, mus, conc, tac_times, tac_values, tac_len, dummy_grid, zero3, ones3,
-                   None, 0.0, activity_img, mu_img, affine, table)
+                   None, 0.0, None, None, None, table)
 
 
 def _prepare_voxel_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOptions) -> _Source:
@@ -422,7 +421,7 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
         "isotope": iso.name,
         "acquisition_start": start,
         "duration_s": float(duration),
-        "simulation": {"phantom": phantom.name, "seed": seed, "truth": truth["json"].name},
+        "simulation": {"phantom": phantom.name, "seed": seed},
     }
     if phantom.injection_time:
         metadata["injection_time"] = phantom.injection_time
@@ -525,6 +524,9 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
 
 def _write_truth(truth, phantom, scanner, physics, src, iso, seed, duration, n_chunks, start, counts, eff,
                  singles_per_crystal, total_activity_start) -> list:
+    if src.activity_image is None:
+        img_shape, src.image_affine = truth_grid(scanner)
+        src.activity_image, src.mu_image = rasterize(phantom.shapes, img_shape, src.image_affine, time_s=0.0)
     common = {"TracerRadionuclide": iso.name, "twinray": {"phantom": phantom.name, "seed": seed}}
     written = []
     written += write_image(truth["activity"], src.activity_image, src.image_affine,
