@@ -1,11 +1,15 @@
 """numba kernels of the Joseph projector pair (see ``projectors.py``).
 
-Kernels take contiguous arrays and scalars only. The image is indexed
-``[z, y, x]``; a LOR is given by its view (``cos_phi``, ``sin_phi``), its
-signed radial position ``s`` (mm), the half length of its transaxial chord
-``h`` (mm) and the fractional slice index of its two ends. The forward and
-back kernels visit exactly the same (voxel, weight) pairs, so one is the
-transpose of the other.
+Kernels take contiguous arrays and scalars only. Inside the kernels the
+image is stored ``[y, x, z]`` (z fastest): every plane of a sinogram shares
+the transaxial path of a (view, radial) LOR, so the path (columns or rows
+visited, in-plane interpolation weights) is computed once and then all
+planes are served from contiguous runs of z. A LOR column is given by its
+view (``cos_phi``, ``sin_phi``), its signed radial position ``s`` (mm), the
+half length of its transaxial chord ``h`` (mm); each plane by the
+fractional slice index of its two ends. The forward and back kernels visit
+exactly the same (voxel, weight) pairs, so one is the transpose of the
+other.
 """
 
 from __future__ import annotations
@@ -17,161 +21,152 @@ from numba import njit, prange
 
 
 @njit(cache=True, nogil=True)
-def _gather(image, k0, wz, j0, wy, i, along_x):
-    """Bilinear read: ``along_x`` means ``i`` is the column and ``j0`` a row."""
-    nz, ny, nx = image.shape
-    acc = 0.0
-    n_inner = ny if along_x else nx
-    for dk in range(2):
-        k = k0 + dk
-        w_k = wz if dk == 1 else 1.0 - wz
-        if w_k == 0.0 or k < 0 or k >= nz:
-            continue
-        for dj in range(2):
-            j = j0 + dj
-            w = wy if dj == 1 else 1.0 - wy
-            if w == 0.0 or j < 0 or j >= n_inner:
-                continue
-            if along_x:
-                acc += w_k * w * image[k, j, i]
-            else:
-                acc += w_k * w * image[k, i, j]
-    return acc
+def _column(image, acc, values, forward, c, sn, s, h, fz_end1, fz_end2, x0, y0, vx, vy):
+    """Walk the transaxial path of one (view, radial) LOR for every plane (Joseph 1982).
 
-
-@njit(cache=True, nogil=True)
-def _scatter(image, value, k0, wz, j0, wy, i, along_x):
-    """Transpose of :func:`_gather`: add ``value`` times the same weights."""
-    nz, ny, nx = image.shape
-    n_inner = ny if along_x else nx
-    for dk in range(2):
-        k = k0 + dk
-        w_k = wz if dk == 1 else 1.0 - wz
-        if w_k == 0.0 or k < 0 or k >= nz:
-            continue
-        for dj in range(2):
-            j = j0 + dj
-            w = wy if dj == 1 else 1.0 - wy
-            if w == 0.0 or j < 0 or j >= n_inner:
-                continue
-            if along_x:
-                image[k, j, i] += w_k * w * value
-            else:
-                image[k, i, j] += w_k * w * value
-
-
-@njit(cache=True, nogil=True)
-def _lor(image, value, forward, c, sn, s, h, fz1, fz2, dz_mm, x0, y0, vx, vy):
-    """Walk one LOR (Joseph 1982): read (forward) or add ``value`` (back).
-
-    Returns the line integral for ``forward``; 0 otherwise.
+    ``image`` is padded with one zero voxel on every side (index ``n + 1``
+    holds grid voxel ``n``), so taps that fall just outside the grid read or
+    write the padding and the inner loop needs no bounds tests.
+    ``forward``: ``acc[p] += sum over steps of interpolated image`` (the
+    caller multiplies by the step length). Otherwise: add ``values[p]``
+    (already multiplied by the step length) times the same weights.
+    Returns the transaxial step length, mm.
     """
     if h <= 0.0:
         return 0.0
-    nz, ny, nx = image.shape
-    # Length along the 3-D line per unit of transaxial length.
-    axial = math.sqrt(1.0 + (dz_mm / (2.0 * h)) ** 2)
+    ny = image.shape[0] - 2
+    nx = image.shape[1] - 2
+    nz = image.shape[2] - 2
+    n_planes = fz_end1.shape[0]
     inv_2h = 1.0 / (2.0 * h)
-    acc = 0.0
+    along_x = abs(sn) >= abs(c)
     # Point at parameter t: (s*c - t*sn, s*sn + t*c); end 1 at t = +h.
-    if abs(sn) >= abs(c):
-        # Steps along x (one per image column); interpolate in y and z.
-        step = vx / abs(sn) * axial
-        xc = s * c
+    if along_x:
+        step = vx / abs(sn)
+        centre = s * c
         half = h * abs(sn)
-        i_lo = max(0, int(math.ceil((xc - half - x0) / vx)))
-        i_hi = min(nx - 1, int(math.floor((xc + half - x0) / vx)))
-        for i in range(i_lo, i_hi + 1):
-            x = x0 + i * vx
-            t = (xc - x) / sn
-            fy = (s * sn + t * c - y0) / vy
-            j0 = int(math.floor(fy))
-            fz = fz2 + (fz1 - fz2) * (t + h) * inv_2h
-            k0 = int(math.floor(fz))
-            if forward:
-                acc += _gather(image, k0, fz - k0, j0, fy - j0, i, True)
-            else:
-                _scatter(image, value * step, k0, fz - k0, j0, fy - j0, i, True)
+        lo = max(0, int(math.ceil((centre - half - x0) / vx)))
+        hi = min(nx - 1, int(math.floor((centre + half - x0) / vx)))
+        n_inner = ny
     else:
-        # Steps along y (one per image row); interpolate in x and z.
-        step = vy / abs(c) * axial
-        yc = s * sn
+        step = vy / abs(c)
+        centre = s * sn
         half = h * abs(c)
-        j_lo = max(0, int(math.ceil((yc - half - y0) / vy)))
-        j_hi = min(ny - 1, int(math.floor((yc + half - y0) / vy)))
-        for j in range(j_lo, j_hi + 1):
-            y = y0 + j * vy
-            t = (y - yc) / c
-            fx = (s * c - t * sn - x0) / vx
-            i0 = int(math.floor(fx))
-            fz = fz2 + (fz1 - fz2) * (t + h) * inv_2h
-            k0 = int(math.floor(fz))
+        lo = max(0, int(math.ceil((centre - half - y0) / vy)))
+        hi = min(ny - 1, int(math.floor((centre + half - y0) / vy)))
+        n_inner = nx
+    for n in range(lo, hi + 1):
+        if along_x:
+            t = (centre - (x0 + n * vx)) / sn
+            f = (s * sn + t * c - y0) / vy
+        else:
+            t = ((y0 + n * vy) - centre) / c
+            f = (s * c - t * sn - x0) / vx
+        if f <= -1.0 or f >= n_inner:
+            continue
+        m = int(f + 1.0)            # padded index of the lower tap (f + 1 > 0, so int() is floor)
+        w1 = f + 1.0 - m
+        w0 = 1.0 - w1
+        if along_x:
+            tap_a = image[m, n + 1]
+            tap_b = image[m + 1, n + 1]
+        else:
+            tap_a = image[n + 1, m]
+            tap_b = image[n + 1, m + 1]
+        a = (t + h) * inv_2h
+        for p in range(n_planes):
+            fz = fz_end2[p] + (fz_end1[p] - fz_end2[p]) * a
+            if fz <= -1.0 or fz >= nz:
+                continue
+            k = int(fz + 1.0)
+            wz1 = fz + 1.0 - k
+            wz0 = 1.0 - wz1
             if forward:
-                acc += _gather(image, k0, fz - k0, i0, fx - i0, j, False)
+                acc[p] += (w0 * (wz0 * tap_a[k] + wz1 * tap_a[k + 1])
+                           + w1 * (wz0 * tap_b[k] + wz1 * tap_b[k + 1]))
             else:
-                _scatter(image, value * step, k0, fz - k0, i0, fx - i0, j, False)
-    return acc * step
+                v = values[p]
+                tap_a[k] += w0 * wz0 * v
+                tap_a[k + 1] += w0 * wz1 * v
+                tap_b[k] += w1 * wz0 * v
+                tap_b[k + 1] += w1 * wz1 * v
+    return step
 
 
 @njit(cache=True, parallel=True)
-def forward_kernel(image, cos_phi, sin_phi, radial_mm, half_chord_mm, fz_end1, fz_end2, dz_mm,
+def forward_kernel(image, cos_phi, sin_phi, radial_mm, half_chord_mm, fz_end1, fz_end2, axial_factor,
                    x0, y0, vx, vy, views, out):
-    """Line integrals of ``image`` for every (plane, selected view, radial) bin.
+    """Line integrals of ``image`` (``[y, x, z]``, zero-padded) for every (plane, selected view, radial) bin.
 
-    ``out[p, k, r]`` is the LOR of plane ``p``, view ``views[k]``, radial bin ``r``.
-    Each output bin is written by one thread only (no races).
+    ``out[p, k, r]`` is the LOR of plane ``p``, view ``views[k]``, radial bin
+    ``r``; ``axial_factor[p, r]`` is the 3-D length per unit of transaxial
+    length. Each output bin is written by one thread only (no races).
     """
     n_planes = out.shape[0]
     n_views = views.shape[0]
     n_radial = out.shape[2]
-    for item in prange(n_planes * n_views):
-        p = item // n_views
-        k = item % n_views
+    dummy = np.zeros(1)
+    for item in prange(n_views * n_radial):
+        k = item // n_radial
+        r = item % n_radial
         v = views[k]
-        for r in range(n_radial):
-            out[p, k, r] = _lor(image, 0.0, True, cos_phi[v], sin_phi[v], radial_mm[r], half_chord_mm[r],
-                                fz_end1[p], fz_end2[p], dz_mm[p], x0, y0, vx, vy)
+        acc = np.zeros(n_planes)
+        step = _column(image, acc, dummy, True, cos_phi[v], sin_phi[v], radial_mm[r], half_chord_mm[r],
+                       fz_end1, fz_end2, x0, y0, vx, vy)
+        for p in range(n_planes):
+            out[p, k, r] = acc[p] * step * axial_factor[p, r]
 
 
 @njit(cache=True, parallel=True)
-def back_kernel(sino, cos_phi, sin_phi, radial_mm, half_chord_mm, fz_end1, fz_end2, dz_mm,
+def back_kernel(sino, cos_phi, sin_phi, radial_mm, half_chord_mm, fz_end1, fz_end2, axial_factor,
                 x0, y0, vx, vy, views, buffers):
     """Transpose of :func:`forward_kernel`, accumulated into per-thread buffers.
 
-    ``buffers`` has shape ``(n_chunks, nz, ny, nx)`` and is zero on entry;
-    chunk ``c`` handles a contiguous range of (plane, view) items and writes
-    only to ``buffers[c]``, so there are no write races. The caller sums the
-    buffers.
+    ``buffers`` has shape ``(n_chunks, ny+2, nx+2, nz+2)`` (zero-padded
+    ``[y, x, z]``) and is zero on entry;
+    chunk ``c`` handles a contiguous range of (view, radial) LOR columns and
+    writes only to ``buffers[c]``, so there are no write races. The caller
+    sums the buffers.
     """
     n_chunks = buffers.shape[0]
     n_planes = sino.shape[0]
     n_views = views.shape[0]
     n_radial = sino.shape[2]
-    total = n_planes * n_views
+    total = n_views * n_radial
     for ch in prange(n_chunks):
         start = ch * total // n_chunks
         stop = (ch + 1) * total // n_chunks
         image = buffers[ch]
+        values = np.zeros(n_planes)
         for item in range(start, stop):
-            p = item // n_views
-            k = item % n_views
+            k = item // n_radial
+            r = item % n_radial
             v = views[k]
-            for r in range(n_radial):
-                value = sino[p, k, r]
-                if value == 0.0:
-                    continue
-                _lor(image, value, False, cos_phi[v], sin_phi[v], radial_mm[r], half_chord_mm[r],
-                     fz_end1[p], fz_end2[p], dz_mm[p], x0, y0, vx, vy)
+            h = half_chord_mm[r]
+            if h <= 0.0:
+                continue
+            c = cos_phi[v]
+            sn = sin_phi[v]
+            step = vx / abs(sn) if abs(sn) >= abs(c) else vy / abs(c)
+            any_value = False
+            for p in range(n_planes):
+                values[p] = sino[p, k, r] * step * axial_factor[p, r]
+                if values[p] != 0.0:
+                    any_value = True
+            if any_value:
+                _column(image, values, values, False, c, sn, radial_mm[r], h,
+                        fz_end1, fz_end2, x0, y0, vx, vy)
 
 
 @njit(cache=True, parallel=True)
-def sum_buffers(buffers, out):
-    """``out = buffers.sum(axis=0)``, parallel over slices."""
-    n_chunks, nz, ny, nx = buffers.shape
-    for k in prange(nz):
-        for j in range(ny):
-            for i in range(nx):
+def sum_buffers_to_zyx(buffers, out):
+    """``out[z, y, x] = sum_c buffers[c, y+1, x+1, z+1]`` (padding dropped), parallel over rows."""
+    n_chunks = buffers.shape[0]
+    nz, ny, nx = out.shape
+    for j in prange(ny):
+        for i in range(nx):
+            for k in range(nz):
                 acc = 0.0
                 for c in range(n_chunks):
-                    acc += buffers[c, k, j, i]
+                    acc += buffers[c, j + 1, i + 1, k + 1]
                 out[k, j, i] = acc

@@ -190,8 +190,11 @@ def _view_list(geom: ProjectionGeometry, views) -> np.ndarray:
 def _kernel_args(geom: ProjectionGeometry):
     g = geom.grid
     phi = geom.view_angles_rad
+    # Length of the 3-D line per unit of transaxial length, per (plane, radial bin).
+    half = np.maximum(geom.half_chord_mm, 1e-12)
+    axial = np.sqrt(1.0 + (geom.dz_mm[:, None] / (2.0 * half[None, :])) ** 2)
     return (np.cos(phi), np.sin(phi), geom.radial_positions_mm, geom.half_chord_mm,
-            geom.fz_end1, geom.fz_end2, geom.dz_mm,
+            geom.fz_end1, geom.fz_end2, axial,
             float(g.x_mm()[0]), float(g.y_mm()[0]), float(g.voxel_mm), float(g.voxel_mm))
 
 
@@ -228,7 +231,11 @@ def forward_project(image, geom: ProjectionGeometry, views=None, out=None) -> np
         out = np.empty(shape, dtype=image.dtype)
     elif out.shape != shape or not out.flags.c_contiguous:
         raise ValueError(f"out must be C-contiguous with shape {shape}")
-    _k.forward_kernel(image, *_kernel_args(geom), v, out)
+    # Kernels work on [y, x, z] (z fastest: all planes of a LOR column read contiguous z runs),
+    # padded with one zero voxel on every side (no bounds tests in the inner loop).
+    padded = np.zeros((image.shape[1] + 2, image.shape[2] + 2, image.shape[0] + 2), dtype=image.dtype)
+    padded[1:-1, 1:-1, 1:-1] = image.transpose(1, 2, 0)
+    _k.forward_kernel(padded, *_kernel_args(geom), v, out)
     return out
 
 
@@ -251,9 +258,9 @@ def back_project(sinogram, geom: ProjectionGeometry, views=None, dtype=None) -> 
 
     Notes
     -----
-    Work is split into one contiguous range of (plane, view) pairs per
-    thread, each with its own float64 image buffer, so no two threads write
-    the same memory; the buffers are summed at the end.
+    Work is split into one contiguous range of (view, radial) LOR columns
+    per thread, each with its own float64 image buffer, so no two threads
+    write the same memory; the buffers are summed at the end.
     """
     sinogram = np.ascontiguousarray(sinogram)
     if sinogram.dtype not in (np.float32, np.float64):
@@ -262,9 +269,10 @@ def back_project(sinogram, geom: ProjectionGeometry, views=None, dtype=None) -> 
     shape = (geom.sinogram_shape[0], len(v), geom.sinogram_shape[2])
     if sinogram.shape != shape:
         raise TwinrayInputError(f"sinogram has shape {sinogram.shape}, expected {shape}")
-    n_chunks = max(1, min(numba.get_num_threads(), shape[0] * shape[1]))
-    buffers = np.zeros((n_chunks,) + geom.grid.shape, dtype=np.float64)
+    n_chunks = max(1, min(numba.get_num_threads(), shape[1] * shape[2]))
+    nz, ny, nx = geom.grid.shape
+    buffers = np.zeros((n_chunks, ny + 2, nx + 2, nz + 2), dtype=np.float64)
     _k.back_kernel(sinogram, *_kernel_args(geom), v, buffers)
     out = np.empty(geom.grid.shape, dtype=np.dtype(dtype) if dtype is not None else sinogram.dtype)
-    _k.sum_buffers(buffers, out)
+    _k.sum_buffers_to_zyx(buffers, out)
     return out
