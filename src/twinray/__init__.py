@@ -35,6 +35,10 @@ __all__ = [
     "reconstruct_arrays",
     "reconstruct_file",
     "derive_calibration",
+    "load_phantom",
+    "half_life_s",
+    "decay_constant_per_s",
+    "positron_fraction",
 ]
 
 # Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
@@ -46,6 +50,9 @@ _LAZY = {
     "forward_project": "projectors", "back_project": "projectors",
     "ReconOptions": "reconstruct.pipeline", "reconstruct_arrays": "reconstruct.pipeline",
     "reconstruct_file": "reconstruct.pipeline", "derive_calibration": "reconstruct.calibration",
+    # the simulator itself is twinray.simulate.simulate (a subpackage of that name)
+    "load_phantom": "simulate",
+    "half_life_s": "isotopes", "decay_constant_per_s": "isotopes", "positron_fraction": "isotopes",
 }
 
 
