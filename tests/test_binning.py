@@ -318,3 +318,40 @@ def test_several_frames_equal_separate_runs(spec, frames):
         assert_same_state(multi.frame(k), single)
         assert multi.accounting(k) == single.accounting(0)
         assert isinstance(single.accounting(0), Accounting)
+
+
+# ---- kernel internals -------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("changes", [{}, {"views": 4}, {"angle_offset_rad": 0.4, "radial_bins": 3},
+                                     {"crystals_per_ring": 18, "radial_bins": 17}])
+def test_inplane_factors_reproduce_the_table(changes):
+    """The small sum/difference tables give exactly the geometry's in-plane table for every pair."""
+    from twinray import _binning_kernels as k
+
+    g = sinogram_geometry(make_small_scanner(**changes))
+    code = k.inplane_codes(g.inplane_bin, g.inplane_end1_is_a)
+    factors = k.inplane_factors(code, g.radial_bins)
+    assert factors is not None
+    by_sum, half, by_diff = factors
+    n = code.shape[0]
+    ja, jb = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
+    part = by_diff[half[ja + jb], ja - jb + n - 1]
+    np.testing.assert_array_equal(np.where(part < 0, part, by_sum[ja + jb] + part), code)
+
+
+def test_table_that_does_not_factor_falls_back(rng, monkeypatch):
+    """A table without the sum/difference structure is used whole, with the same results as the oracle."""
+    from twinray import _binning_kernels as k
+    from twinray import binning
+
+    code = k.inplane_codes(GEOMETRY.inplane_bin, GEOMETRY.inplane_end1_is_a).copy()
+    valid = np.argwhere(code >= 0)
+    i, j = valid[0]
+    code[i, j] ^= 2          # move one pair to the neighbouring radial bin: no longer factors
+    assert k.inplane_factors(code, GEOMETRY.radial_bins) is None
+    monkeypatch.setattr(binning, "_inplane_factors", lambda g: None)
+    cols = random_events(SCANNER, 5000, rng, energies=True)
+    state = bin_event_arrays(cols, GEOMETRY)
+    prompts, delayed, counts = reference_bin(cols, GEOMETRY, None, SCANNER.energy_window_kev)
+    np.testing.assert_array_equal(state.prompts, prompts)
+    np.testing.assert_array_equal(state.counts, counts)

@@ -70,13 +70,61 @@ def crystal_tables(rings, crystals_per_ring):
             np.ascontiguousarray(ids % crystals_per_ring, dtype=np.int32))
 
 
+def inplane_factors(inplane_code, radial_bins):
+    """Split the in-plane table into small tables by index sum and difference, if it factors exactly.
+
+    With the view/radial convention of :mod:`twinray.geometry`, the entry for
+    crystals ``ja``, ``jb`` is the view of ``ja + jb`` plus the radial
+    position and end of ``ja - jb`` for the half-turn ``half[ja + jb]``:
+    ``code = by_sum[ja + jb] + by_diff[half[ja + jb], ja - jb + N - 1]``, or
+    ``by_diff`` alone when that is a negative mark. Tables of about 8N
+    entries stay in the first-level cache, unlike the N^2 table.
+
+    The factors are read off ``inplane_code`` itself and checked against it
+    for every pair, so the geometry module stays the only source of truth;
+    ``None`` is returned when the table does not factor (the full table is
+    then used).
+
+    Returns
+    -------
+    (by_sum, half, by_diff) : int32 arrays of shapes (2N-1,), (2N-1,), (2, 2N-1), or None
+    """
+    table = np.asarray(inplane_code, dtype=np.int64)
+    n = table.shape[0]
+    ja, jb = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
+    total = (ja + jb).ravel()
+    diff = (ja - jb + n - 1).ravel()
+    code = table.ravel()
+    half = ((np.arange(2 * n - 1) // 2) >= n // 2).astype(np.int64)
+    good = code >= 0
+    by_sum = np.zeros(2 * n - 1, np.int64)
+    by_sum[total[good]] = (((code[good] >> 1) // radial_bins) * radial_bins) << 1
+    rel = np.where(good, code - by_sum[total], code)
+    by_diff = np.full((2, 2 * n - 1), -1, np.int64)
+    by_diff[half[total], diff] = rel
+    part = by_diff[half[total], diff]
+    rebuilt = np.where(part < 0, part, by_sum[total] + part)
+    if not np.array_equal(rebuilt, code):
+        return None
+    return (np.ascontiguousarray(by_sum, dtype=np.int32), np.ascontiguousarray(half, dtype=np.int32),
+            np.ascontiguousarray(by_diff, dtype=np.int32))
+
+
 @njit(cache=True, nogil=True, inline="always")
-def inplane_lookup(ca, cb, n_crystals, position_of, inplane_code):
-    """The in-plane table entry of a crystal pair (0 for invalid ids; they are rejected later)."""
+def inplane_lookup(ca, cb, n_crystals, position_of, inplane_code, factored, by_sum, half, by_diff):
+    """The in-plane table entry of a crystal pair (that of 0, 0 for invalid ids; they are rejected later).
+
+    Uses the small factor tables of :func:`inplane_factors` when ``factored``,
+    else the full table.
+    """
     valid = (ca >= 0) & (ca < n_crystals) & (cb >= 0) & (cb < n_crystals)
-    a = ca if valid else 0
-    b = cb if valid else 0
-    return inplane_code[position_of[a], position_of[b]]
+    pa = position_of[ca if valid else 0]
+    pb = position_of[cb if valid else 0]
+    if factored:
+        t = pa + pb
+        part = by_diff[half[t], pa - pb + (by_diff.shape[1] - 1) // 2]
+        return part if part < 0 else by_sum[t] + part
+    return inplane_code[pa, pb]
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -119,7 +167,7 @@ def classify_event(ca, cb, code, in_frame, ea, eb, use_energy, e_lo, e_hi, n_cry
 @njit(cache=True, nogil=True)
 def classify_batch(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed, energy_a, energy_b, use_energy,
                    e_lo, e_hi, frame_starts, frame_ends, n_crystals, ring_of, position_of, inplane_code,
-                   plane_of_rings, bins_per_plane, n_bins, codes, counts):
+                   factored, by_sum, half, by_diff, plane_of_rings, bins_per_plane, n_bins, codes, counts):
     """Pass 1: a code per event (see the module docstring) and the counters.
 
     ``counts`` has shape (n_frames + 1, len(FIELDS)) and is added to; row
@@ -127,17 +175,60 @@ def classify_batch(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed
     those outside every frame. Without ``use_time`` every event is in
     frame 0. Returns the number of binned events (codes >= 0).
 
-    The in-plane table (crystals_per_ring^2 entries, larger than a core's
-    cache for a whole-body ring) is read in a first tight loop, so that many
-    look-ups are in flight at once; the decisions follow on sequential data.
+    The in-plane look-up (small factor tables when the table factors, else
+    the crystals_per_ring^2 table, larger than a core's cache for a
+    whole-body ring) is done in a first tight loop, so that many look-ups are
+    in flight at once; the decisions follow on sequential data.
     """
     n = crystal_a.shape[0]
     for i in range(n):
-        codes[i] = inplane_lookup(crystal_a[i], crystal_b[i], n_crystals, position_of, inplane_code)
-    n_frames = frame_starts.shape[0]
+        codes[i] = inplane_lookup(crystal_a[i], crystal_b[i], n_crystals, position_of, inplane_code, factored,
+                                  by_sum, half, by_diff)
     local = np.zeros(counts.shape, np.int64)
+    if use_time or use_energy:
+        binned = _decide_general(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed, energy_a, energy_b,
+                                 use_energy, e_lo, e_hi, frame_starts, frame_ends, n_crystals, ring_of,
+                                 plane_of_rings, bins_per_plane, n_bins, codes, local)
+    else:
+        binned = _decide_simple(crystal_a, crystal_b, delayed, use_delayed, n_crystals, ring_of, plane_of_rings,
+                                bins_per_plane, codes, local)
+    # Every row got exactly one field, so the rows read per slot are the row sums.
+    for s in range(local.shape[0]):
+        total = 0
+        for f in range(local.shape[1]):
+            total += local[s, f]
+        local[s, READ] = total
+        for f in range(local.shape[1]):
+            counts[s, f] += local[s, f]
+    return binned
+
+
+@njit(cache=True, nogil=True)
+def _decide_simple(crystal_a, crystal_b, delayed, use_delayed, n_crystals, ring_of, plane_of_rings, bins_per_plane,
+                   codes, local):
+    """Pass 1, second loop, one frame holding every event and no energy window (the lean case)."""
     binned = 0
-    for i in range(n):
+    zero = np.float32(0.0)
+    for i in range(crystal_a.shape[0]):
+        code = classify_event(crystal_a[i], crystal_b[i], codes[i], True, zero, zero, False, zero, zero,
+                              n_crystals, ring_of, plane_of_rings, bins_per_plane)
+        is_delayed = delayed[i] if use_delayed else False
+        ok = code >= 0
+        field = (DELAYED if is_delayed else PROMPTS) if ok else -code
+        local[0, field] += 1
+        codes[i] = ((code << 1) | np.int64(is_delayed)) if ok else REJECTED
+        binned += ok
+    return binned
+
+
+@njit(cache=True, nogil=True)
+def _decide_general(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed, energy_a, energy_b, use_energy,
+                    e_lo, e_hi, frame_starts, frame_ends, n_crystals, ring_of, plane_of_rings, bins_per_plane,
+                    n_bins, codes, local):
+    """Pass 1, second loop, with time frames and/or the energy window."""
+    n_frames = frame_starts.shape[0]
+    binned = 0
+    for i in range(crystal_a.shape[0]):
         slot = 0
         in_frame = True
         if use_time:
@@ -154,14 +245,6 @@ def classify_batch(crystal_a, crystal_b, time_ns, use_time, delayed, use_delayed
         local[slot, field] += 1
         codes[i] = (((slot * n_bins + code) << 1) | np.int64(is_delayed)) if ok else REJECTED
         binned += ok
-    # Every row got exactly one field, so the rows read per slot are the row sums.
-    for s in range(local.shape[0]):
-        total = 0
-        for f in range(local.shape[1]):
-            total += local[s, f]
-        local[s, READ] = total
-        for f in range(local.shape[1]):
-            counts[s, f] += local[s, f]
     return binned
 
 

@@ -210,6 +210,10 @@ class _Binner:
         self.codes = np.zeros(0, np.int64)
         self.sorted_codes = np.zeros(0, np.int64)
         self.inplane_code = kernels.inplane_codes(g.inplane_bin, g.inplane_end1_is_a)
+        factors = _inplane_factors(g)
+        self.factored = factors is not None
+        self.by_sum, self.half, self.by_diff = factors if factors is not None else (
+            np.zeros(1, np.int32), np.zeros(1, np.int32), np.zeros((2, 1), np.int32))
         self.ring_of, self.position_of = kernels.crystal_tables(g.scanner.rings, g.scanner.crystals_per_ring)
         self.plane_of_rings = np.ascontiguousarray(g.plane_of_rings, dtype=np.int32)
         self.no_time = np.zeros(0, np.int64)
@@ -244,13 +248,26 @@ class _Binner:
         sc = self.g.scanner
         kernels.classify_batch(ca, cb, t, self.use_time, d, d.size > 0, ea, eb, self.use_energy,
                                self.e_lo, self.e_hi, self.starts, self.ends, sc.n_crystals, self.ring_of,
-                               self.position_of, self.inplane_code, self.plane_of_rings, self.bins_per_plane,
-                               self.n_bins, codes, self.state.counts)
+                               self.position_of, self.inplane_code, self.factored, self.by_sum, self.half,
+                               self.by_diff, self.plane_of_rings, self.bins_per_plane, self.n_bins, codes,
+                               self.state.counts)
         if self.accumulate == "direct":
             kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
         else:
             kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,
                                      self.n_keys, self.key_counts, self.sorted_codes)
+
+
+_FACTORS_CACHE: dict = {}
+
+
+def _inplane_factors(geometry: SinogramGeometry):
+    """Small in-plane factor tables of a geometry (checked exactly; cached per layout)."""
+    key = (geometry.scanner.to_json(), geometry.rebin)
+    if key not in _FACTORS_CACHE:
+        code = kernels.inplane_codes(geometry.inplane_bin, geometry.inplane_end1_is_a)
+        _FACTORS_CACHE[key] = kernels.inplane_factors(code, geometry.radial_bins)
+    return _FACTORS_CACHE[key]
 
 
 def _column(arrays: dict, name: str, dtype) -> np.ndarray:
@@ -352,9 +369,11 @@ def bin_events(events, geometry: SinogramGeometry | None = None, *, frames=None,
     Notes
     -----
     Decoding (pyarrow, in a thread) overlaps with the numba kernels, which
-    release the GIL. The kernels first read the in-plane lookup table for a
-    whole batch in one tight loop (many cache misses in flight), then decide
-    bins and rejections with branch-free selects, then add the events.
+    release the GIL. The kernels first look up the in-plane bin of a whole
+    batch in one tight loop, from small tables by crystal-index sum and
+    difference that are checked to reproduce the geometry's table exactly,
+    then decide bins and rejections with branch-free selects, then add the
+    events.
 
     References
     ----------
