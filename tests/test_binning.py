@@ -349,9 +349,11 @@ def test_table_that_does_not_factor_falls_back(rng, monkeypatch):
     i, j = valid[0]
     code[i, j] ^= 2          # move one pair to the neighbouring radial bin: no longer factors
     assert k.inplane_factors(code, GEOMETRY.radial_bins) is None
-    monkeypatch.setattr(binning, "_inplane_factors", lambda g: None)
+    monkeypatch.setattr(binning, "_TABLES_CACHE", {})
+    monkeypatch.setattr(k, "inplane_factors", lambda code, radial_bins: None)
     cols = random_events(SCANNER, 5000, rng, energies=True)
     state = bin_event_arrays(cols, GEOMETRY)
+    assert binning._inplane_tables(GEOMETRY)[1] is None  # the full table was used
     prompts, delayed, counts = reference_bin(cols, GEOMETRY, None, SCANNER.energy_window_kev)
     np.testing.assert_array_equal(state.prompts, prompts)
     np.testing.assert_array_equal(state.counts, counts)

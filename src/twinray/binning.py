@@ -209,8 +209,7 @@ class _Binner:
         self.key_counts = np.zeros(self.n_keys + 1, np.int64)
         self.codes = np.zeros(0, np.int64)
         self.sorted_codes = np.zeros(0, np.int64)
-        self.inplane_code = kernels.inplane_codes(g.inplane_bin, g.inplane_end1_is_a)
-        factors = _inplane_factors(g)
+        self.inplane_code, factors = _inplane_tables(g)
         self.factored = factors is not None
         self.by_sum, self.half, self.by_diff = factors if factors is not None else (
             np.zeros(1, np.int32), np.zeros(1, np.int32), np.zeros((2, 1), np.int32))
@@ -258,16 +257,21 @@ class _Binner:
                                      self.n_keys, self.key_counts, self.sorted_codes)
 
 
-_FACTORS_CACHE: dict = {}
+_TABLES_CACHE: dict = {}
 
 
-def _inplane_factors(geometry: SinogramGeometry):
-    """Small in-plane factor tables of a geometry (checked exactly; cached per layout)."""
+def _inplane_tables(geometry: SinogramGeometry):
+    """``(inplane_code, factors or None)`` of a geometry, built once per layout.
+
+    The factors (:func:`twinray._binning_kernels.inplane_factors`) are checked
+    to reproduce the full table exactly; without them the full table is used.
+    """
     key = (geometry.scanner.to_json(), geometry.rebin)
-    if key not in _FACTORS_CACHE:
+    if key not in _TABLES_CACHE:
         code = kernels.inplane_codes(geometry.inplane_bin, geometry.inplane_end1_is_a)
-        _FACTORS_CACHE[key] = kernels.inplane_factors(code, geometry.radial_bins)
-    return _FACTORS_CACHE[key]
+        code.setflags(write=False)
+        _TABLES_CACHE[key] = (code, kernels.inplane_factors(code, geometry.radial_bins))
+    return _TABLES_CACHE[key]
 
 
 def _column(arrays: dict, name: str, dtype) -> np.ndarray:
