@@ -15,7 +15,7 @@ _SWITCHES = ("attenuation", "scatter", "randoms", "delayed", "positron_range", "
 @click.argument("phantom", type=click.Path(path_type=Path), metavar="PHANTOM.toml")
 @click.option("-o", "--output", required=True, type=click.Path(path_type=Path), metavar="EVENTS.parquet",
               help="Event file to write; truth files are written next to it (<stem>_truth.json, "
-                   "<stem>_truth_activity.nii.gz, <stem>_truth_mu.nii.gz).")
+                   "<stem>_truth_activity.nii.gz, <stem>_truth_mu.nii.gz, <stem>_truth_labels.nii.gz).")
 @click.option("--scanner", type=click.Path(path_type=Path), metavar="S.toml",
               help="Scanner TOML (overrides the phantom's 'scanner' key).")
 @click.option("--duration", type=click.FloatRange(min=0, min_open=True), metavar="SEC",

@@ -518,13 +518,27 @@ def _uniform_in_shape(shape: Shape, n, rng):
     return cx + u * cr - v * sr, cy + u * sr + v * cr, cz + w
 
 
-def rasterize(shapes, shape, affine, time_s: float = 0.0, supersample: int = 4) -> tuple:
+def label_image(shapes, shape, affine) -> np.ndarray:
+    """Which shape holds each voxel centre: 0 for none, ``i + 1`` for shape ``i`` (topmost wins)."""
+    nx, ny, nz = shape
+    x = affine[0, 0] * np.arange(nx) + affine[0, 3]
+    y = affine[1, 1] * np.arange(ny) + affine[1, 3]
+    z = affine[2, 2] * np.arange(nz) + affine[2, 3]
+    gx, gy, gz = np.meshgrid(x, y, z, indexing="ij")
+    labels = np.zeros(shape, dtype=np.int16)
+    for i, s in enumerate(shapes):
+        labels[s.contains(gx, gy, gz)] = i + 1
+    return labels
+
+
+def rasterize(shapes, shape, affine, time_s: float | None = 0.0, supersample: int = 4) -> tuple:
     """Activity (Bq/mL) and mu (1/cm) images of an analytic phantom.
 
     Each voxel holds the mean over ``supersample**3`` points spread evenly in
     it (partial-volume averaging; an even ``supersample`` keeps the points off
     voxel centres, where shape boundaries often fall), with the replacement rule of overlapping
-    shapes. Activity includes the time-activity curve at ``time_s`` but not
+    shapes. Activity includes the time-activity curve at ``time_s`` (or the
+    reference concentration, multiplier 1, when ``time_s`` is None) but not
     radioactive decay.
 
     Parameters
@@ -540,7 +554,7 @@ def rasterize(shapes, shape, affine, time_s: float = 0.0, supersample: int = 4) 
     mu = np.zeros(shape, dtype=np.float64)
     offsets = (np.arange(supersample) + 0.5) / supersample - 0.5
     ix, iy = np.meshgrid(np.arange(nx, dtype=float), np.arange(ny, dtype=float), indexing="ij")
-    conc = [s.activity_bq_per_ml * float(s.tac(time_s)) for s in shapes]
+    conc = [s.activity_bq_per_ml * (1.0 if time_s is None else float(s.tac(time_s))) for s in shapes]
     for iz in range(nz):
         for ox in offsets:
             for oy in offsets:

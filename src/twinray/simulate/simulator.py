@@ -88,7 +88,8 @@ from ..images import centred_affine, write_image
 from ..isotopes import get_isotope, mean_positron_range_mm
 from ..scanner import Scanner, load_scanner
 from . import _kernels as K
-from .phantom import Phantom, PhysicsOptions, check_phantom_in_fov, check_physics, rasterize, visible_volumes_ml
+from .phantom import (Phantom, PhysicsOptions, check_phantom_in_fov, check_physics, label_image, rasterize,
+                      visible_volumes_ml)
 
 #: 0.5 degree FWHM of the non-collinearity angle, as a Gaussian sigma (rad).
 NONCOLLINEARITY_SIGMA_RAD = math.radians(0.5) / (2.0 * math.sqrt(2.0 * math.log(2.0)))
@@ -138,6 +139,7 @@ def truth_paths_for(events_path) -> dict:
         "json": p.with_name(f"{stem}_truth.json"),
         "activity": p.with_name(f"{stem}_truth_activity.nii.gz"),
         "mu": p.with_name(f"{stem}_truth_mu.nii.gz"),
+        "labels": p.with_name(f"{stem}_truth_labels.nii.gz"),
     }
 
 
@@ -524,16 +526,28 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
 
 def _write_truth(truth, phantom, scanner, physics, src, iso, seed, duration, n_chunks, start, counts, eff,
                  singles_per_crystal, total_activity_start) -> list:
+    dynamic = any(s.tac_times_s is not None for s in phantom.shapes)
     if src.activity_image is None:
         img_shape, src.image_affine = truth_grid(scanner)
-        src.activity_image, src.mu_image = rasterize(phantom.shapes, img_shape, src.image_affine, time_s=0.0)
+        # with time-activity curves the image holds the reference concentrations
+        # (multiplier 1); the curves are in the truth JSON, the regions in the label image
+        src.activity_image, src.mu_image = rasterize(phantom.shapes, img_shape, src.image_affine,
+                                                     time_s=None if dynamic else 0.0)
     common = {"TracerRadionuclide": iso.name, "twinray": {"phantom": phantom.name, "seed": seed}}
     written = []
+    description = ("reference activity concentration of each shape (time-activity multiplier 1, no decay); "
+                   "the concentration at time t is this times the shape's tac(t) (truth JSON 'shapes', "
+                   "regions in the label image)" if dynamic else
+                   "true activity concentration at acquisition start")
     written += write_image(truth["activity"], src.activity_image, src.image_affine,
                            {**common, "Units": "Bq/mL", "ImageDecayCorrected": True,
-                            "ImageDecayCorrectionTime": 0.0,
-                            "Description": "true activity concentration at acquisition start "
-                                           "(time-activity curves at t = 0)"})
+                            "ImageDecayCorrectionTime": 0.0, "Description": description})
+    if phantom.shapes:
+        labels = label_image(phantom.shapes, src.activity_image.shape, src.image_affine)
+        written += write_image(truth["labels"], labels, src.image_affine,
+                               {**common, "Units": "label",
+                                "Description": "shape at each voxel centre: 0 none, i + 1 for shapes[i] of "
+                                               "the truth JSON"})
     written += write_image(truth["mu"], src.mu_image, src.image_affine,
                            {**common, "Units": "1/cm",
                             "Description": "linear attenuation coefficient at 511 keV"})
@@ -554,7 +568,8 @@ def _write_truth(truth, phantom, scanner, physics, src, iso, seed, duration, n_c
         "counts": counts,
         "singles_per_crystal": singles_per_crystal.tolist(),
         "crystal_efficiency": np.round(eff, 6).tolist(),
-        "images": {"activity": truth["activity"].name, "mu": truth["mu"].name},
+        "images": {"activity": truth["activity"].name, "mu": truth["mu"].name,
+                   "labels": truth["labels"].name if phantom.shapes else None},
     }
     with atomic_path(truth["json"], suffix=".json") as tmp:
         tmp.write_text(json.dumps(doc, indent=1, sort_keys=True) + "\n")
