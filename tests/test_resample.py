@@ -1,5 +1,6 @@
 """Resampling of list-mode events (twinray.resample, twinray._resample_kernels)."""
 
+import json
 import math
 
 import nibabel as nib
@@ -248,3 +249,44 @@ def test_image_bootstrap_std_matches_independent_realizations(realizations, tmp_
     assert 0.75 <= ratio <= 1.25, ratio
     level = result.summary["levels"][0]["regions"]["centre"]
     assert level["voxel_std"] == pytest.approx(float(boot_std[mask].mean()), rel=1e-5)
+
+
+def test_thinning_levels_through_the_command(realizations, tmp_path, capsys):
+    """`twinray resample --mode thin` with two fractions: 4-D outputs, cov = std/mean, the thinned mean
+    images estimate the same concentration (reconstructed as scans of P times the duration), and the
+    relative noise falls with counts roughly as 1/sqrt(counts) (Poisson statistics)."""
+    from twinray.cli.main import main
+
+    out = tmp_path / "levels"
+    code = main(["resample", str(realizations[1]), "-o", str(out), "--mode", "thin", "--fraction", "0.2,0.6",
+                 "--replicates", "6", "--seed", "5", "--rebin", "ssrb", "--method", "fbp", "--filter", "hann",
+                 "--workers", "0", "--roi", "centre=sphere:0,0,0,22", "--json"])
+    assert code == 0
+    result = json.loads(capsys.readouterr().out)
+    assert result["accounting"]["read"] == result["accounting"]["prompts_binned"] + sum(
+        v for k, v in result["accounting"].items() if k.startswith("rejected_")) + result["accounting"]["delayed_binned"]
+    for name in ("mean.nii.gz", "std.nii.gz", "cov.nii.gz", "summary.json", "noise_vs_counts.png",
+                 "mean.json", "std.json", "cov.json"):
+        assert (out / name).exists(), name
+    mean = np.asarray(nib.load(out / "mean.nii.gz").dataobj)
+    std = np.asarray(nib.load(out / "std.nii.gz").dataobj)
+    cov = np.asarray(nib.load(out / "cov.nii.gz").dataobj)
+    assert mean.ndim == 4 and mean.shape[3] == 2
+    expected = np.divide(std, mean, out=np.zeros_like(std), where=mean > 0)
+    np.testing.assert_allclose(cov, expected, rtol=1e-5, atol=1e-7)
+    summary = json.loads((out / "summary.json").read_text())
+    low, high = summary["levels"]
+    assert low["fraction"] == 0.2 and high["fraction"] == 0.6
+    assert high["mean_prompts"] / low["mean_prompts"] == pytest.approx(3.0, rel=0.02)
+    assert low["regions"]["centre"]["mean"] == pytest.approx(high["regions"]["centre"]["mean"], rel=0.05)
+    low_c, high_c = low["regions"]["centre"], high["regions"]["centre"]
+    # Across thinned replicates of one scan a bin varies binomially, n P (1 - P) (textbook), so for FBP
+    # (linear) the voxel CoV ratio of the two levels is sqrt((1-0.2)/0.2 / ((1-0.6)/0.6)) = 2.449 ...
+    ratio = low_c["voxel_cov"] / high_c["voxel_cov"]
+    assert ratio == pytest.approx(math.sqrt((0.8 / 0.2) / (0.4 / 0.6)), rel=0.15)
+    # ... and the scan-equivalent noise (divided by sqrt(1-P)) falls as counts^-0.5 (Poisson statistics).
+    assert low_c["scan_voxel_cov"] == pytest.approx(low_c["voxel_cov"] / math.sqrt(0.8), rel=1e-9)
+    assert summary["noise_vs_counts_slope"]["centre"]["voxel_cov"] == pytest.approx(-0.5, abs=0.12)
+    side = json.loads((out / "cov.json").read_text())
+    assert side["Units"] == "1" and side["twinray"]["volume_axis"] == "fraction"
+    assert (out / "noise_vs_counts.png").read_bytes()[:4] == b"\x89PNG"

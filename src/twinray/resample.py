@@ -37,13 +37,14 @@ J. F. C. Kingman, Poisson Processes, Oxford University Press, 1993
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 
 from . import _binning_kernels as binning_kernels
 from . import _resample_kernels as kernels
 from .accounting import Accounting
-from .binning import _Binner, _column, _energy_window, empty_state
+from .binning import _Binner, _energy_window, empty_state
 from .errors import TwinrayInputError
 from .events import DEFAULT_BATCH_SIZE, EventSource, iter_event_batches, open_events
 from .geometry import SinogramGeometry, sinogram_geometry
@@ -239,29 +240,15 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
 
 
 def _classify(binner, arrays: dict) -> np.ndarray:
-    """Codes of one batch (flat bin << 1 | delayed, or -1) from the ordinary binning kernel.
+    """Codes of one batch (``flat_bin << 1 | delayed``, or negative when rejected).
 
-    Counts every row in ``binner.state.counts`` exactly as :func:`twinray.binning.bin_events`
-    does; the lookup-table logic lives only in :mod:`twinray._binning_kernels`.
+    The ordinary binner bins the batch (the original, unweighted sinogram
+    comes for free) and leaves the codes of its first pass in
+    ``binner.codes``; so the lookup-table logic and the accounting live only
+    in :mod:`twinray.binning` and its kernels, whatever their internals.
     """
-    ca = _column(arrays, "crystal_a", np.int32)
-    cb = _column(arrays, "crystal_b", np.int32)
-    n = len(ca)
-    t = _column(arrays, "time_ns", np.int64) if binner.use_time else binner.no_time
-    d = _column(arrays, "delayed", np.bool_) if "delayed" in arrays else binner.no_flag
-    if binner.use_energy:
-        ea = _column(arrays, "energy_a_kev", np.float32)
-        eb = _column(arrays, "energy_b_kev", np.float32)
-    else:
-        ea = eb = binner.no_energy
-    if len(binner.codes) < n:
-        binner.codes = np.empty(n, np.int64)
-    codes = binner.codes[:n]
-    binning_kernels.classify_batch(ca, cb, t, binner.use_time, d, d.size > 0, ea, eb, binner.use_energy,
-                                   binner.e_lo, binner.e_hi, binner.starts, binner.ends, binner.g.scanner.n_crystals,
-                                   binner.ring_of, binner.position_of, binner.inplane_code, binner.plane_of_rings,
-                                   binner.bins_per_plane, binner.n_bins, codes, binner.state.counts)
-    return codes
+    binner.add(arrays)
+    return binner.codes[:len(arrays["crystal_a"])]
 
 
 def replicate_weights(seed: int, mode: str, fractions, replicates: int, first_row: int, n_rows: int) -> np.ndarray:
@@ -328,34 +315,53 @@ def _region_masks(regions, shape, affine, mean_image):
                                "voxels": int(mask.sum())}]
 
 
-def region_noise(images: np.ndarray, mask: np.ndarray) -> dict:
+def region_noise(images: np.ndarray, mask: np.ndarray, fraction: float = 1.0, mode: str = "bootstrap") -> dict:
     """Noise statistics of one region over replicates.
 
     Parameters
     ----------
     images : ndarray, shape (replicates, x, y, z)
     mask : ndarray of bool, shape (x, y, z)
+    fraction : float
+        Thinning probability of these replicates (1 for the bootstrap).
+    mode : {"bootstrap", "thin"}
 
     Returns
     -------
     dict
-        ``mean`` (regional mean of the mean image), ``voxel_std`` and
-        ``voxel_cov`` (regional means of the voxel-wise std and of std/mean),
-        ``roi_mean_std`` and ``roi_mean_cov`` (spread over replicates of the
-        regional mean, the noise of a region measurement), all with ddof = 1.
+        ``mean`` (regional mean of the mean image); ``voxel_std`` (regional
+        mean of the voxel-wise std, ddof = 1); ``voxel_cov`` =
+        ``voxel_std / mean``; ``roi_mean_std`` and ``roi_mean_cov`` (spread
+        over replicates of the regional mean: the noise of a region
+        measurement); and, for thinning, ``scan_voxel_cov`` and
+        ``scan_roi_mean_cov``: the same divided by ``sqrt(1 - P)``.
+
+    Notes
+    -----
+    Thinned replicates of one scan share its events: a bin with ``n``
+    counts varies across them with the binomial variance ``n P (1 - P)``,
+    whereas an independent scan of ``P`` times the duration has the Poisson
+    variance ``n P``. The ``scan_*`` values undo that factor, which is exact
+    for a linear reconstruction (FBP) and a first-order estimate for OSEM;
+    they are what to compare across count levels (undefined for P = 1).
     """
     values = images[:, mask].astype(np.float64)          # (replicates, voxels)
-    mean_v = values.mean(axis=0)
     std_v = values.std(axis=0, ddof=1)
     roi = values.mean(axis=1)
-    m = float(mean_v.mean())
-    return {
+    m = float(values.mean())
+    voxel_std = float(std_v.mean())
+    out = {
         "mean": m,
-        "voxel_std": float(std_v.mean()),
-        "voxel_cov": float(np.mean(np.divide(std_v, mean_v, out=np.zeros_like(std_v), where=mean_v > 0))),
+        "voxel_std": voxel_std,
+        "voxel_cov": voxel_std / m if m > 0 else 0.0,
         "roi_mean_std": float(roi.std(ddof=1)),
         "roi_mean_cov": float(roi.std(ddof=1) / m) if m > 0 else 0.0,
     }
+    if mode == "thin":
+        scale = 1.0 / math.sqrt(1.0 - fraction) if fraction < 1.0 else None
+        out["scan_voxel_cov"] = out["voxel_cov"] * scale if scale else None
+        out["scan_roi_mean_cov"] = out["roi_mean_cov"] * scale if scale else None
+    return out
 
 
 def noise_slope(counts, noise) -> float | None:
@@ -368,8 +374,13 @@ def noise_slope(counts, noise) -> float | None:
     return float(np.polyfit(np.log(counts[ok]), np.log(noise[ok]), 1)[0])
 
 
-def plot_noise_against_counts(path, levels: list, region_names: list, title: str = "") -> None:
-    """PNG of regional noise (CoV of voxels, and of the regional mean) against counts, log-log."""
+def plot_noise_against_counts(path, levels: list, region_names: list, title: str = "",
+                              mode: str = "bootstrap") -> None:
+    """PNG of regional noise (voxel CoV and CoV of the regional mean) against counts, log-log.
+
+    For thinning the scan-equivalent values (``scan_*``, see :func:`region_noise`)
+    are plotted; levels with P = 1 have none and are left out.
+    """
     import matplotlib
 
     matplotlib.use("Agg")
@@ -378,25 +389,32 @@ def plot_noise_against_counts(path, levels: list, region_names: list, title: str
     from .atomic import atomic_path
     from .tac import OKABE_ITO
 
-    counts = np.array([lv["mean_prompts"] for lv in levels], dtype=np.float64)
+    key = "scan_" if mode == "thin" else ""
     fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
+    drawn_reference = False
     for r, name in enumerate(region_names):
         colour = OKABE_ITO[r % len(OKABE_ITO)]
-        voxel = np.array([lv["regions"][name]["voxel_cov"] for lv in levels]) * 100
-        roi = np.array([lv["regions"][name]["roi_mean_cov"] for lv in levels]) * 100
-        ax.plot(counts, voxel, "o-", color=colour, label=f"{name}: voxel CoV")
-        ax.plot(counts, roi, "s--", color=colour, label=f"{name}: CoV of regional mean", markerfacecolor="none")
-        if len(counts) and voxel[-1] > 0:
-            ref = voxel[np.argmax(counts)] * np.sqrt(counts.max() / counts)
-            ax.plot(counts, ref, ":", color="0.4", linewidth=1,
-                    label="1/sqrt(counts) (Poisson)" if r == 0 else None)
+        rows = [(lv["mean_prompts"], lv["regions"][name][key + "voxel_cov"], lv["regions"][name][key + "roi_mean_cov"])
+                for lv in levels if lv["regions"][name].get(key + "voxel_cov")]
+        if not rows:
+            continue
+        counts, voxel, roi = (np.array(v, dtype=np.float64) for v in zip(*rows))
+        ax.plot(counts, voxel * 100, "o-", color=colour, label=f"{name}: voxel CoV")
+        ax.plot(counts, roi * 100, "s--", color=colour, label=f"{name}: CoV of regional mean",
+                markerfacecolor="none")
+        top = np.argmax(counts)
+        ref = voxel[top] * 100 * np.sqrt(counts[top] / counts)
+        ax.plot(counts, ref, ":", color="0.4", linewidth=1,
+                label=None if drawn_reference else "1/sqrt(counts) (Poisson)")
+        drawn_reference = True
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel("prompts per replicate (counts)")
-    ax.set_ylabel("coefficient of variation (%)")
+    ax.set_ylabel("coefficient of variation (%)" + (" of a scan of P x duration" if mode == "thin" else ""))
     ax.set_title(title or "image noise against counts")
     ax.grid(True, which="both", alpha=0.3)
-    ax.legend(frameon=False, fontsize=8)
+    if drawn_reference:
+        ax.legend(frameon=False, fontsize=8)
     fig.tight_layout()
     try:
         with atomic_path(path, suffix=".png") as tmp:
@@ -570,12 +588,12 @@ def make_resample(events, output_dir, *, mode: str = "bootstrap", replicates: in
             "mean_prompts": float(totals[:, 0].mean()),
             "mean_delayed": float(totals[:, 1].mean()) if state.delayed is not None else None,
             "prompts_per_replicate": [int(v) for v in totals[:, 0]],
-            "regions": {name: region_noise(images[sel], mask) for name, mask in masks.items()},
+            "regions": {name: region_noise(images[sel], mask, p, mode) for name, mask in masks.items()},
         })
-    slopes = {name: {"voxel_cov": noise_slope([lv["mean_prompts"] for lv in levels],
-                                              [lv["regions"][name]["voxel_cov"] for lv in levels]),
-                     "roi_mean_cov": noise_slope([lv["mean_prompts"] for lv in levels],
-                                                 [lv["regions"][name]["roi_mean_cov"] for lv in levels])}
+    noise_key = "scan_" if mode == "thin" else ""
+    counts = [lv["mean_prompts"] for lv in levels]
+    slopes = {name: {key: noise_slope(counts, [lv["regions"][name][noise_key + key] or 0.0 for lv in levels])
+                     for key in ("voxel_cov", "roi_mean_cov")}
               for name in masks}
 
     def stack(volumes):
@@ -601,13 +619,17 @@ def make_resample(events, output_dir, *, mode: str = "bootstrap", replicates: in
     summary = {**common, "units": units, "effective_duration_s": [duration * p for p in fractions],
                "regions": region_info, "levels": levels,
                "noise_vs_counts_slope": slopes if len(fractions) > 1 else None,
-               "notes": ["roi_mean_cov: standard deviation over replicates of the regional mean divided by it",
-                         "voxel_cov: regional mean of the voxel-wise std/mean",
-                         "thinned replicates are reconstructed as scans of P times the duration"],
+               "noise_vs_counts_slope_of": (noise_key + "voxel_cov / " + noise_key + "roi_mean_cov"),
+               "notes": ["voxel_cov: regional mean of the voxel-wise std (ddof 1) over the regional mean",
+                         "roi_mean_cov: standard deviation over replicates of the regional mean, over the mean",
+                         "thinned replicates are reconstructed as scans of P times the duration",
+                         "thin: replicates of one scan vary with the binomial variance nP(1-P); scan_* = "
+                         "value / sqrt(1-P) estimates the noise of an independent scan of P times the duration "
+                         "(Poisson variance nP; exact for FBP, first order for OSEM)"],
                "warnings": warnings}
     plot_path = output_dir / "noise_vs_counts.png"
     plot_noise_against_counts(plot_path, levels, list(masks),
-                              title=f"{mode}: noise against counts ({replicates} replicates per level)")
+                              title=f"{mode}: noise against counts ({replicates} replicates per level)", mode=mode)
     summary_path = output_dir / "summary.json"
     summary["outputs"] = [str(p) for p in written] + [str(plot_path), str(summary_path)]
     with atomic_path(summary_path, suffix=".json") as tmp:

@@ -27,10 +27,10 @@ def correction_and_recon_options(func):
                      help="Normalization file from `twinray normalize`."),
         click.option("--mu", "mu_path", type=click.Path(path_type=Path), metavar="MU.nii.gz",
                      help="mu-map (1/cm at 511 keV, scanner frame) for attenuation correction."),
-        click.option("--randoms", type=click.Choice(["auto", "delayed", "singles", "none"]), default="auto",
+        click.option("--randoms", type=click.Choice(["none", "delayed", "singles", "auto"]), default="none",
                      show_default=True,
-                     help="Randoms estimate of each frame: its own delayed events (fan-sum smoothed), singles, "
-                          "or none; auto = delayed when the events have a delayed channel, else none."),
+                     help="Randoms estimate of each frame (or replicate): its own delayed events (fan-sum "
+                          "smoothed), singles, none, or auto (delayed when the events have a delayed channel)."),
         click.option("--singles", "singles_path", type=click.Path(path_type=Path), metavar="SINGLES.parquet",
                      help="Singles file (for --randoms singles and --deadtime-ns)."),
         click.option("--scatter", type=click.Choice(["none", "tail-fit"]), default="none", show_default=True,
