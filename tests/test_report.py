@@ -364,17 +364,30 @@ def test_report_for_dynamic_and_tacs(tmp_path):
 
 def test_report_for_resample_finds_noise_against_counts(tmp_path):
     vol = _phantom()
+    fractions = [0.1, 0.3, 1.0]
     for name, data in (("mean", vol), ("std", vol * 0.1), ("cov", (vol > 0) * 0.1)):
-        _write_image(tmp_path / f"{name}.nii.gz", data, {"Units": "Bq/mL"})
-    summary = {"mode": "thin", "replicates": 5,
-               "levels": [{"fraction": f, "counts": 1e6 * f, "regions": [
-                   {"region": "background", "cov": 0.05 / np.sqrt(f), "counts": 1e6 * f}]} for f in (0.1, 0.3, 1.0)]}
+        _write_image(tmp_path / f"{name}.nii.gz", np.stack([data] * 3, axis=-1), {"Units": "Bq/mL"})
+    levels = [{"fraction": f, "mean_prompts": 1e6 * f,
+               "regions": {"background": {"mean": 5.0, "voxel_cov": 0.05 / np.sqrt(f),
+                                          "roi_mean_cov": 0.01 / np.sqrt(f)}}} for f in fractions]
+    summary = {"mode": "thin", "replicates": 5, "fractions": fractions, "levels": levels,
+               "accounting": {"read": 10, "prompts_binned": 9, "rejected_no_lor": 1}}
     (tmp_path / "summary.json").write_text(json.dumps(summary))
     series = noise_series_from_summary(summary)
-    np.testing.assert_allclose(series["background"][0], [1e5, 3e5, 1e6])
+    np.testing.assert_allclose(series["background, voxel COV"][0], [1e5, 3e5, 1e6])
+    np.testing.assert_allclose(series["background, regional-mean COV"][1], 0.01 / np.sqrt(fractions))
     out = report_for_resample(tmp_path, tmp_path / "noise.html")
-    _, images = _check_report(out, ["Noise study"])
+    parser, images = _check_report(out, ["Noise study"])
     assert len(images) == 3  # mean, noise map, noise against counts
+    assert "(fraction 1)" in " ".join(parser.text)
+
+
+def test_noise_series_generic_records():
+    summary = {"runs": [{"region": "a", "counts": 100, "cov": 0.1}, {"region": "a", "counts": 400, "cov": 0.05},
+                        {"region": "b", "counts": 100, "std": 2.0}]}
+    series = noise_series_from_summary(summary)
+    assert list(series) == ["a"]
+    np.testing.assert_allclose(series["a"][1], [0.1, 0.05])
 
 
 def test_report_for_events_counts_and_rate(tmp_path):

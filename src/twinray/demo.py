@@ -158,19 +158,24 @@ def _run_json(argv: list) -> dict:
 
     from .cli.main import cli
 
-    buf = io.StringIO()
+    buf, err = io.StringIO(), io.StringIO()
     try:
-        with contextlib.redirect_stdout(buf):
+        # The steps' warnings are collected for the report instead of scrolling past.
+        with contextlib.redirect_stdout(buf), contextlib.redirect_stderr(err):
             cli.main(args=[*argv, "--json"], prog_name="twinray", standalone_mode=False)
     except click.ClickException as exc:
         raise TwinrayInputError(f"demo step '{' '.join(argv[:1])}': {exc.format_message()}") from None
+    warnings = [line[len("warning:"):].strip() for line in err.getvalue().splitlines()
+                if line.startswith("warning:")]
     lines = [line for line in buf.getvalue().splitlines() if line.strip()]
-    if not lines:
-        return {}
-    try:
-        return json.loads(lines[-1])
-    except json.JSONDecodeError:
-        return {"stdout": buf.getvalue()}
+    result = {}
+    if lines:
+        try:
+            result = json.loads(lines[-1])
+        except json.JSONDecodeError:
+            result = {"stdout": buf.getvalue()}
+    result["demo_warnings"] = warnings
+    return result
 
 
 def _run_step(name: str, argv: list, on_step=None, steps: list | None = None) -> DemoStep:
@@ -210,12 +215,13 @@ def demo_plan(manifest: dict, data: Path, out: Path, size: str, workers: int | N
     image = ["--matrix", str(s["matrix"]), "--voxel-mm", str(s["voxel_mm"])]
     osem = ["--method", "osem", "--iterations", str(s["iterations"]), "--subsets", str(s["subsets"])]
     par = ["--workers", str(workers)] if workers else []
-    dyn_corr = ["--norm", str(out / "norm.h5"), *corrections]
+    dyn_corr = ["--norm", str(out / "norm.h5"), "--randoms", manifest["dynamic"].get("randoms", "delayed"),
+                "--scatter", "tail-fit"]
     if dyn_mu.is_file():
         dyn_corr += ["--mu", str(dyn_mu)]
     plan = [
         ("inspect", ["inspect", study]),
-        ("normalize", ["normalize", normscan, "-o", out / "norm.h5"]),
+        ("normalize", ["normalize", normscan, "-o", out / "norm.h5", *rebin]),
         ("sinogram", ["sinogram", study, "-o", out / "sinogram.h5", "--norm", out / "norm.h5", "--mu", mu,
                       *corrections, *frame, *rebin]),
         ("FBP", ["reconstruct", out / "sinogram.h5", "-o", out / "fbp.nii.gz", "--method", "fbp",

@@ -30,6 +30,11 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
               [(s.name, "twinray " + " ".join(_short(a, out, data) for a in s.argv), round(s.seconds, 2))
                for s in steps], caption="Steps, in order")
 
+    warned = warning_rows(steps)
+    if warned:
+        rep.table(["step", "warning", "times"], warned,
+                  caption="Warnings printed by the steps (numbers that vary are shown as N)")
+
     study = data / manifest["study"]["events"]
     sections.add_events_sections(rep, study)
     if (out / "norm.h5").is_file():
@@ -50,6 +55,19 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
                                        "data origin": origin},
                               inputs=[*inputs, mu]))
     return rep.write(out / "report.html")
+
+
+def warning_rows(steps) -> list:
+    """``(step, warning, times)``: the steps' warnings, grouped when they differ only in their numbers."""
+    import re
+
+    rows: dict = {}
+    for step in steps:
+        for text in step.result.get("demo_warnings", []):
+            pattern = re.sub(r"\d+(\.\d+)?", "N", text)
+            key = (step.name, pattern)
+            rows[key] = rows.get(key, 0) + 1
+    return [(name, pattern, times) for (name, pattern), times in rows.items()]
 
 
 def _short(arg: str, out: Path, data: Path) -> str:

@@ -44,8 +44,9 @@ def demo_command(output_dir, size, workers, data_dir, run):
                 bar.set_description(f"demo: {name}")
                 return
             bar.update(1)
-            run.say(f"  {name:<10} {step.seconds:7.1f} s   " + " ".join(
-                str(p) for p in step.result.get("outputs", [])[:3]))
+            n_warn = len(step.result.get("demo_warnings", []))
+            note = f"   ({n_warn} warning{'s' if n_warn != 1 else ''}, listed in the report)" if n_warn else ""
+            run.say(f"  {name:<10} {step.seconds:7.1f} s{note}")
 
         run.say(f"twinray demo ({size}) into {output_dir}")
         result = run_demo(output_dir, size=size, workers=workers, data_dir=data_dir, on_step=on_step)
@@ -59,6 +60,7 @@ def demo_command(output_dir, size, workers, data_dir, run):
         "data_dir": str(result.data_dir),
         "data_origin": result.data_origin,
         "accounting": sino.result.get("accounting", {}) if sino else {},
-        "steps": [{"name": s.name, "argv": list(s.argv), "seconds": round(s.seconds, 3)} for s in result.steps],
+        "steps": [{"name": s.name, "argv": list(s.argv), "seconds": round(s.seconds, 3),
+                   "warnings": s.result.get("demo_warnings", [])} for s in result.steps],
         "timings_s": {s.name: round(s.seconds, 3) for s in result.steps},
     })

@@ -434,57 +434,79 @@ def _numeric(x) -> bool:
 
 
 def noise_series_from_summary(summary) -> dict:
-    """Find noise-against-counts data in a ``summary.json``.
+    """Noise-against-counts data of a ``summary.json``.
 
-    Looks for lists of records that carry a count (a numeric key with
-    "count" in its name) and a noise value (a numeric key with "cov" in its
-    name, else "std"); records are grouped by their ``region`` key.
+    The ``resample`` layout: ``levels`` is a list with, per count level,
+    ``mean_prompts`` and ``regions`` (region -> ``voxel_cov``,
+    ``roi_mean_cov``). Failing that, any list of records with a numeric key
+    containing "count" and one containing "cov" (else "std") is used, grouped
+    by the records' ``region`` key.
 
     Returns
     -------
     dict of str to (ndarray, ndarray)
-        Region -> (counts, noise); empty when the summary has no such data.
+        Series label -> (counts, noise); only series with two or more levels.
     """
     found: dict = {}
+    levels = summary.get("levels") if isinstance(summary, dict) else None
+    if isinstance(levels, list) and levels and all(isinstance(lv, dict) and "regions" in lv for lv in levels):
+        for lv in levels:
+            counts = lv.get("mean_prompts")
+            regions = lv.get("regions")
+            if not _numeric(counts) or not isinstance(regions, dict):
+                continue
+            for region, stats in regions.items():
+                for key, label in (("voxel_cov", "voxel COV"), ("roi_mean_cov", "regional-mean COV")):
+                    if isinstance(stats, dict) and _numeric(stats.get(key)):
+                        c, n = found.setdefault(f"{region}, {label}", ([], []))
+                        c.append(float(counts))
+                        n.append(float(stats[key]))
+    else:
+        def visit(node, region_hint=""):
+            if isinstance(node, dict):
+                for k, v in node.items():
+                    visit(v, region_hint=k if isinstance(v, (list, dict)) else region_hint)
+            elif isinstance(node, list):
+                for item in node:
+                    if isinstance(item, dict):
+                        count_key = next((k for k, v in item.items() if "count" in k.lower() and _numeric(v)), None)
+                        noise_key = (next((k for k, v in item.items() if "cov" in k.lower() and _numeric(v)), None)
+                                     or next((k for k, v in item.items() if "std" in k.lower() and _numeric(v)),
+                                             None))
+                        if count_key and noise_key:
+                            c, n = found.setdefault(str(item.get("region", region_hint or "image")), ([], []))
+                            c.append(float(item[count_key]))
+                            n.append(float(item[noise_key]))
+                            continue
+                    visit(item, region_hint)
 
-    def visit(node, region_hint=""):
-        if isinstance(node, dict):
-            for k, v in node.items():
-                visit(v, region_hint=k if isinstance(v, (list, dict)) else region_hint)
-        elif isinstance(node, list):
-            for item in node:
-                if isinstance(item, dict):
-                    count_key = next((k for k, v in item.items() if "count" in k.lower() and _numeric(v)), None)
-                    noise_key = (next((k for k, v in item.items() if "cov" in k.lower() and _numeric(v)), None)
-                                 or next((k for k, v in item.items() if "std" in k.lower() and _numeric(v)), None))
-                    if count_key and noise_key:
-                        region = str(item.get("region", region_hint or "image"))
-                        found.setdefault(region, ([], []))
-                        found[region][0].append(float(item[count_key]))
-                        found[region][1].append(float(item[noise_key]))
-                        continue
-                visit(item, region_hint)
-
-    visit(summary)
-    return {r: (np.asarray(c), np.asarray(s)) for r, (c, s) in found.items() if len(c) >= 2}
+        visit(summary)
+    return {r: (np.asarray(c), np.asarray(n)) for r, (c, n) in found.items() if len(c) >= 2}
 
 
-def _flat_scalars(summary, prefix="") -> dict:
-    out = {}
-    if isinstance(summary, dict):
-        for k, v in summary.items():
-            name = f"{prefix}{k}"
-            if isinstance(v, (str, int, float, bool)) or v is None:
-                out[name.replace("_", " ")] = v
-            elif isinstance(v, list) and len(v) <= 8 and all(not isinstance(x, (dict, list)) for x in v):
-                out[name.replace("_", " ")] = v
-            elif isinstance(v, dict) and len(prefix) < 40:
-                out.update(_flat_scalars(v, prefix=f"{name}."))
-    return out
+_SUMMARY_FACTS = {"mode": "mode", "replicates": "replicates per level", "fractions": "fractions kept",
+                  "seed": "seed", "frame_s": "frame (s)", "effective_duration_s": "effective duration (s)",
+                  "units": "image units"}
+
+
+def _level_rows(summary: dict) -> list:
+    rows = []
+    for lv in summary.get("levels", []) if isinstance(summary.get("levels"), list) else []:
+        if not isinstance(lv, dict) or not isinstance(lv.get("regions"), dict):
+            continue
+        for region, st in lv["regions"].items():
+            if isinstance(st, dict):
+                rows.append((lv.get("fraction"), lv.get("mean_prompts"), region, st.get("mean"),
+                             st.get("voxel_cov"), st.get("roi_mean_cov")))
+    return rows
+
+
+def _volume_of(data, index: int):
+    return data[..., index] if data.ndim == 4 else data
 
 
 def add_resample_sections(report: Report, out_dir) -> None:
-    """Mean, standard-deviation and COV images of a resampling study and noise against counts."""
+    """Mean and noise images of a ``resample`` folder, its regional noise and noise against counts."""
     out_dir = Path(out_dir)
     summary_path = out_dir / "summary.json"
     summary = {}
@@ -493,29 +515,45 @@ def add_resample_sections(report: Report, out_dir) -> None:
             summary = json.loads(summary_path.read_text())
         except json.JSONDecodeError:
             raise TwinrayInputError(f"{summary_path} is not valid JSON") from None
-    report.heading(f"Noise study: {out_dir.name}")
-    scalars = _flat_scalars(summary)
-    if scalars:
-        report.key_values(dict(list(scalars.items())[:40]), caption="Summary")
+    mode = summary.get("mode", "")
+    report.heading(f"Noise study: {out_dir.name}" + (f" ({mode})" if mode else ""))
+    facts = {label: summary[key] for key, label in _SUMMARY_FACTS.items() if key in summary}
+    if facts:
+        report.key_values(facts, caption="Resampling")
+    fractions = summary.get("fractions") if isinstance(summary.get("fractions"), list) else []
+    pick = int(np.argmax(fractions)) if len(fractions) > 1 else 0
+    level_text = f" (fraction {format_fraction(fractions[pick])})" if len(fractions) > 1 else ""
     mean_path, cov_path, std_path = (out_dir / f"{n}.nii.gz" for n in ("mean", "cov", "std"))
     if mean_path.is_file():
         data, affine, side = read_image_with_sidecar(mean_path)
-        data = data[..., 0] if data.ndim == 4 else data
+        data = _volume_of(data, pick)
         point = figures.pick_point(data)
         report.figure(figures.slices_figure(data, affine, units=str(side.get("Units", "")), point=point),
-                      caption="Mean of the replicate images.")
+                      caption=f"Mean of the replicate images{level_text}.")
         for path, what in ((cov_path, "coefficient of variation (std / mean)"),
                            (std_path, f"standard deviation ({side.get('Units', 'image units')})")):
             if path.is_file():
                 noise, aff2, _ = read_image_with_sidecar(path)
-                noise = noise[..., 0] if noise.ndim == 4 else noise
-                vrange = figures.display_range(noise, 0.0, 99.0)
+                noise = _volume_of(noise, pick)
                 report.figure(figures.slices_figure(noise, aff2, units=what, point=point, cmap=figures.NOISE_CMAP,
-                                                    vrange=vrange),
-                              caption=f"Noise map: voxel-wise {what} over the replicates (ddof = 1).")
+                                                    vrange=figures.display_range(noise, 0.0, 99.0)),
+                              caption=(f"Noise map{level_text}: voxel-wise {what} over the replicates (ddof = 1); "
+                                       "colour scale clipped at the 99th percentile."))
                 break
+    rows = _level_rows(summary)
+    if rows:
+        report.table(["fraction", "mean prompts", "region", "regional mean", "voxel COV", "regional-mean COV"],
+                     rows, caption="Noise by region and count level")
     series = noise_series_from_summary(summary)
     if series:
         report.figure(figures.noise_vs_counts_figure(series),
-                      caption=("Noise against counts, log-log. Solid lines: fitted power law; dotted: the slope "
-                               "-1/2 of counting statistics through the highest-count point."))
+                      caption=("Noise against counts, log-log. Solid lines: fitted power law (slope in the legend); "
+                               "dotted: the slope -1/2 of counting statistics through the highest-count point."))
+    if isinstance(summary.get("accounting"), dict):
+        report.accounting(summary["accounting"])
+    for text in summary.get("warnings", []) if isinstance(summary.get("warnings"), list) else []:
+        report.note(str(text))
+
+
+def format_fraction(p) -> str:
+    return f"{float(p):g}" if _numeric(p) else str(p)
