@@ -14,6 +14,7 @@ import click
 
 #: subcommand name -> "module:attribute" of its click command.
 COMMANDS = {
+    "demo": "twinray.cli.demo:demo_command",
     "calibrate": "twinray.cli.calibrate:calibrate_command",
     "reconstruct": "twinray.cli.reconstruct:reconstruct_command",
     "inspect": "twinray.cli.inspect_cmd:inspect_command",
