@@ -39,6 +39,8 @@ __all__ = [
     "half_life_s",
     "decay_constant_per_s",
     "positron_fraction",
+    "Report",
+    "run_demo",
 ]
 
 # Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
@@ -53,6 +55,7 @@ _LAZY = {
     # the simulator itself is twinray.simulate.simulate (a subpackage of that name)
     "load_phantom": "simulate",
     "half_life_s": "isotopes", "decay_constant_per_s": "isotopes", "positron_fraction": "isotopes",
+    "Report": "report", "run_demo": "demo",
 }
 
 
