@@ -430,8 +430,9 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
     if phantom.injected_activity_bq is not None:
         metadata["injected_activity_bq"] = phantom.injected_activity_bq
     elif all(s.tac_times_s is None for s in phantom.shapes):
-        # a static phantom: the activity it holds at acquisition start
-        metadata["injected_activity_bq"] = total_activity_start
+        # a static phantom: the activity it holds, decayed back to the injection time when known
+        elapsed = _seconds_between(phantom.injection_time, start) if phantom.injection_time else 0.0
+        metadata["injected_activity_bq"] = total_activity_start * math.exp(lam * elapsed)
     if phantom.normalization_source is not None:
         metadata["normalization_source"] = phantom.normalization_source
 
@@ -522,6 +523,20 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
     result_counts["kernel_s"] = round(kernel_s, 3)
     result_counts["wall_s"] = round(time.perf_counter() - t_start, 3)
     return SimulationResult(output, tuple(written), result_counts, float(duration), n_chunks, seed)
+
+
+def _seconds_between(earlier: str, later: str) -> float:
+    """Seconds from one ISO 8601 date-time to another (naive times are taken as UTC)."""
+    from datetime import datetime, timezone
+
+    def parse(text):
+        value = datetime.fromisoformat(text.replace("Z", "+00:00"))
+        return value if value.tzinfo else value.replace(tzinfo=timezone.utc)
+
+    try:
+        return (parse(later) - parse(earlier)).total_seconds()
+    except ValueError:
+        raise TwinrayInputError(f"cannot compare the date-times {earlier!r} and {later!r}") from None
 
 
 def _write_truth(truth, phantom, scanner, physics, src, iso, seed, duration, n_chunks, start, counts, eff,
