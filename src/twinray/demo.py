@@ -241,16 +241,17 @@ def demo_plan(manifest: dict, data: Path, out: Path, size: str, workers: int | N
     return [(name, [str(a) for a in argv]) for name, argv in plan]
 
 
-def run_demo(output_dir, size: str = "small", workers: int | None = None, data_dir=None, on_step=None) -> DemoResult:
+def run_demo(output_dir, size: str = "full", workers: int | None = None, data_dir=None, on_step=None) -> DemoResult:
     """Run the whole job on the demonstration study and write ``OUTPUT/report.html``.
 
     Parameters
     ----------
     output_dir : path-like
         Folder for every output (created if needed).
-    size : {"small", "full"}
-        "small" (for continuous integration) bins part of the static scan and
-        uses fewer iterations, frames and replicates; "full" uses everything.
+    size : {"full", "small"}
+        "full" uses the whole study; "small" (a quick check, for continuous
+        integration) bins one second of the static scan and uses fewer
+        iterations, frames and replicates.
     workers : int, optional
         Dask workers for the dynamic frames and the replicates.
     data_dir : path-like, optional

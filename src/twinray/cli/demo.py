@@ -12,9 +12,9 @@ from ._common import common_options, progress
 @click.command("demo")
 @click.option("-o", "--output", "output_dir", type=click.Path(path_type=Path), default=Path("twinray-demo"),
               show_default=True, metavar="DIR", help="Folder for every output and DIR/report.html.")
-@click.option("--size", type=click.Choice(["small", "full"]), default="small", show_default=True,
-              help="small: part of the static scan, fewer iterations and replicates (about a minute or two); "
-                   "full: the whole study (a few minutes on 2 cores).")
+@click.option("--size", type=click.Choice(["full", "small"]), default="full", show_default=True,
+              help="full: the whole study (a few minutes on 2 cores); small: a quick check on one second of "
+                   "the static scan with fewer frames, iterations and replicates (for continuous integration).")
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="Dask workers for dynamic frames and noise replicates [default: one per core].")
 @click.option("--data", "data_dir", type=click.Path(path_type=Path), default=None, metavar="FOLDER",
@@ -34,7 +34,7 @@ def demo_command(output_dir, size, workers, data_dir, run):
 
         twinray demo -o demo-out
 
-        twinray demo -o demo-out --size full --workers 2
+        twinray demo -o demo-out --size small --workers 1
     """
     from ..demo import run_demo
 
