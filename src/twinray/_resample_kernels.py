@@ -76,11 +76,15 @@ def _uniform(key, row):
 
 @njit(cache=True, nogil=True, inline="always")
 def _poisson1(u, cdf):
-    # Inversion: the smallest k with u < F(k); 1.58 comparisons on average.
-    k = 0
-    last = cdf.shape[0] - 1
-    while k < last and u >= cdf[k]:
-        k += 1
+    # Inversion: the smallest k with u < F(k). The first six comparisons are summed
+    # without branches (a Poisson(1) draw exceeds 5 with probability 6e-4), so the
+    # unpredictable outcome costs no mispredicted jumps; the rare tail is walked.
+    k = ((u >= cdf[0]) + (u >= cdf[1]) + (u >= cdf[2]) + (u >= cdf[3]) + (u >= cdf[4])
+         + (u >= cdf[5]))
+    if k == 6:
+        last = cdf.shape[0] - 1
+        while k < last and u >= cdf[k]:
+            k += 1
     return k
 
 
@@ -126,6 +130,7 @@ def accumulate_weighted(codes, first_row, keys, mode, fractions, cdf, prompts, d
         Sum of weights of prompts and delayed per stream.
     """
     n_streams = keys.shape[0]
+    thin = mode != 0
     for i in range(codes.shape[0]):
         c = codes[i]
         if c < 0:
@@ -133,15 +138,76 @@ def accumulate_weighted(codes, first_row, keys, mode, fractions, cdf, prompts, d
         row = first_row + i
         base = (c >> 1) * n_streams
         is_delayed = c & 1
+        target = delayed if is_delayed else prompts
+        # No branch on the weight itself: zero weights are added like any other.
         for r in range(n_streams):
             u = _uniform(keys[r], row)
-            if mode == 0:
-                w = _poisson1(u, cdf)
+            if thin:
+                w = np.int32(u < fractions[r])
             else:
-                w = 1 if u < fractions[r] else 0
-            if w:
-                if is_delayed:
-                    delayed[base + r] += w
-                else:
-                    prompts[base + r] += w
-                totals[r, is_delayed] += w
+                w = np.int32(_poisson1(u, cdf))
+            target[base + r] += w
+            totals[r, is_delayed] += w
+
+
+@njit(cache=True, nogil=True)
+def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes, sorted_rows):
+    """Counting sort of the binned codes (with their global rows) by ``(code >> 1) // key_div``.
+
+    With ``key_div`` = radial bins, a key is one (plane, view) row of the
+    sinogram, so that the replicate increments that follow sweep a few tens
+    of kilobytes at a time instead of jumping over the whole bin-major array
+    (random access is what limits binning). Returns how many codes were kept.
+    """
+    key_counts[:] = 0
+    n = codes.shape[0]
+    for i in range(n):
+        c = codes[i]
+        if c >= 0:
+            key_counts[(c >> 1) // key_div + 1] += 1
+    for k in range(n_keys):
+        key_counts[k + 1] += key_counts[k]
+    for i in range(n):
+        c = codes[i]
+        if c >= 0:
+            k = (c >> 1) // key_div
+            j = key_counts[k]
+            sorted_codes[j] = c
+            sorted_rows[j] = first_row + i
+            key_counts[k] = j + 1
+    return key_counts[n_keys - 1] if n_keys > 0 else 0
+
+
+@njit(cache=True, nogil=True)
+def accumulate_weighted_rows(codes, rows, count, keys, mode, fractions, cdf, prompts, delayed, totals):
+    """:func:`accumulate_weighted` for codes already partitioned, each with its global row index."""
+    n_streams = keys.shape[0]
+    thin = mode != 0
+    for i in range(count):
+        c = codes[i]
+        row = rows[i]
+        base = (c >> 1) * n_streams
+        is_delayed = c & 1
+        target = delayed if is_delayed else prompts
+        for r in range(n_streams):
+            u = _uniform(keys[r], row)
+            if thin:
+                w = np.int32(u < fractions[r])
+            else:
+                w = np.int32(_poisson1(u, cdf))
+            target[base + r] += w
+            totals[r, is_delayed] += w
+
+
+@njit(cache=True, nogil=True)
+def unweave(flat, n_streams, out):
+    """Bin-major ``flat[bin * n_streams + r]`` -> stream-major ``out[r, bin]``.
+
+    One sequential read and ``n_streams`` sequential write streams (memory
+    bandwidth bound, unlike a strided numpy transpose of a tall array).
+    """
+    n_bins = out.shape[1]
+    for b in range(n_bins):
+        base = b * n_streams
+        for r in range(n_streams):
+            out[r, b] = flat[base + r]

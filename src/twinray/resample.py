@@ -101,13 +101,17 @@ class ReplicateState:
         return len(self.fractions)
 
 
-def check_resampling(mode: str, replicates: int, fractions) -> tuple:
-    """Validate the resampling options; returns the fractions as a tuple of floats."""
+def check_resampling(mode: str, replicates: int, fractions, min_replicates: int = 2) -> tuple:
+    """Validate the resampling options; returns the fractions as a tuple of floats.
+
+    ``min_replicates`` is 2 for a noise study (a standard deviation needs two)
+    and 1 for binning alone.
+    """
     if mode not in MODES:
         raise TwinrayInputError(f"resampling mode must be bootstrap or thin, got '{mode}'")
-    if isinstance(replicates, bool) or int(replicates) != replicates or replicates < 2:
-        raise TwinrayInputError(f"--replicates must be an integer >= 2 (a standard deviation needs two), "
-                                f"got {replicates}")
+    if isinstance(replicates, bool) or int(replicates) != replicates or replicates < min_replicates:
+        raise TwinrayInputError(f"--replicates must be an integer >= {min_replicates} (a standard deviation "
+                                f"needs two), got {replicates}")
     if mode == "bootstrap":
         if fractions not in (None, (), [], (1.0,), [1.0]):
             raise TwinrayInputError("--fraction applies to --mode thin only")
@@ -164,7 +168,7 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
         Default ``sinogram_geometry(scanner, rebin)``.
     mode : {"bootstrap", "thin"}
     replicates : int
-        Replicates per fraction (>= 2).
+        Replicates per fraction (>= 1).
     fractions : sequence of float, optional
         Thinning probabilities ``0 < P <= 1`` (``mode="thin"`` only).
     seed : int
@@ -184,7 +188,7 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     -------
     ReplicateState
     """
-    fractions = check_resampling(mode, replicates, fractions)
+    fractions = check_resampling(mode, replicates, fractions, min_replicates=1)
     source = events if isinstance(events, EventSource) else open_events(events, scanner)
     if geometry is None:
         geometry = sinogram_geometry(source.scanner, rebin)
@@ -219,19 +223,30 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
         # The ordinary binner classifies (same lookup tables, same accounting); only the
         # accumulation differs.
         classifier = _Binner(empty_state(geometry, frames, with_delayed=with_delayed), window)
+        # Events are partitioned by sinogram row (plane, view) before the weighted
+        # increments, so that those sweep a few tens of kilobytes at a time.
+        n_keys = geometry.planes * geometry.views
+        key_counts = np.zeros(n_keys + 1, np.int64)
+        sorted_codes = np.zeros(0, np.int64)
+        sorted_rows = np.zeros(0, np.int64)
         for first_row, arrays in iter_event_batches(source, columns, batch_size, prefetch=2):
             codes = _classify(classifier, arrays)
-            kernels.accumulate_weighted(codes, np.int64(first_row), keys[g0:g1], 0 if mode == "bootstrap" else 1,
-                                        stream_fraction[g0:g1], kernels.POISSON1_CDF, p_flat, d_flat,
-                                        group_totals)
+            if len(sorted_codes) < len(codes):
+                sorted_codes = np.empty(len(codes), np.int64)
+                sorted_rows = np.empty(len(codes), np.int64)
+            kept = kernels.partition_codes(codes, np.int64(first_row), geometry.radial_bins, n_keys, key_counts,
+                                           sorted_codes, sorted_rows)
+            kernels.accumulate_weighted_rows(sorted_codes, sorted_rows, kept, keys[g0:g1],
+                                             0 if mode == "bootstrap" else 1, stream_fraction[g0:g1],
+                                             kernels.POISSON1_CDF, p_flat, d_flat, group_totals)
             if progress is not None:
                 progress(len(codes))
         passes += 1
         if g0 == 0:
             counting.counts[:] = classifier.state.counts
-        prompts[g0:g1] = p_flat.reshape(geometry.n_bins, m).T.reshape((m,) + geometry.shape)
+        kernels.unweave(p_flat, m, prompts[g0:g1].reshape(m, geometry.n_bins))
         if with_delayed:
-            delayed[g0:g1] = d_flat.reshape(geometry.n_bins, m).T.reshape((m,) + geometry.shape)
+            kernels.unweave(d_flat, m, delayed[g0:g1].reshape(m, geometry.n_bins))
         totals[g0:g1] = group_totals
     frame_s = tuple(frame) if frame is not None else (0.0, float(source.duration_s or 0.0))
     return ReplicateState(geometry=geometry, frame_s=frame_s, mode=mode, seed=int(seed),
