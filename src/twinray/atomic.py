@@ -14,6 +14,19 @@ from pathlib import Path
 from .errors import TwinrayInputError
 
 
+def _default_mode() -> int:
+    """Permissions of a new file under the current umask (mkstemp makes 0600)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def publish(tmp_path, final_path) -> None:
+    """Give a finished temporary file normal permissions and rename it into place."""
+    os.chmod(tmp_path, _default_mode())
+    os.replace(tmp_path, final_path)
+
+
 def refuse_overwriting_inputs(output, inputs) -> None:
     """Raise if ``output`` is the same file as any of ``inputs``.
 
@@ -59,7 +72,7 @@ def atomic_path(final_path, suffix: str | None = None):
     tmp_path = Path(tmp)
     try:
         yield tmp_path
-        os.replace(tmp_path, final_path)
+        publish(tmp_path, final_path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             tmp_path.unlink()

@@ -19,6 +19,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .atomic import publish
 from .errors import TwinrayInputError
 
 METADATA_KEY = b"twinray"
@@ -106,7 +107,7 @@ class EventWriter:
     def close(self) -> Path:
         """Finish the file and rename it to its final name."""
         self._writer.close()
-        os.replace(self._tmp, self.path)
+        publish(self._tmp, self.path)
         return self.path
 
     def abort(self) -> None:
