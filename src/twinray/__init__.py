@@ -41,6 +41,17 @@ __all__ = [
     "positron_fraction",
     "Report",
     "run_demo",
+    "frame_decay_factor",
+    "frame_reference_time",
+    "FrameSchedule",
+    "parse_schedule",
+    "load_schedule",
+    "make_dynamic",
+    "bin_replicates",
+    "make_resample",
+    "time_activity_curves",
+    "tac_from_image",
+    "map_tasks",
 ]
 
 # Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
@@ -56,6 +67,10 @@ _LAZY = {
     "load_phantom": "simulate",
     "half_life_s": "isotopes", "decay_constant_per_s": "isotopes", "positron_fraction": "isotopes",
     "Report": "report", "run_demo": "demo",
+    "frame_decay_factor": "decay", "frame_reference_time": "decay",
+    "FrameSchedule": "schedule", "parse_schedule": "schedule", "load_schedule": "schedule",
+    "make_dynamic": "dynamic", "bin_replicates": "resample", "make_resample": "resample",
+    "time_activity_curves": "tac", "tac_from_image": "tac", "map_tasks": "parallel",
 }
 
 
