@@ -235,7 +235,9 @@ def forward_project(image, geom: ProjectionGeometry, views=None, out=None) -> np
     # padded with one zero voxel on every side (no bounds tests in the inner loop).
     padded = np.zeros((image.shape[1] + 2, image.shape[2] + 2, image.shape[0] + 2), dtype=image.dtype)
     padded[1:-1, 1:-1, 1:-1] = image.transpose(1, 2, 0)
-    _k.forward_kernel(padded, *_kernel_args(geom), v, out)
+    nz, ny, nx = image.shape
+    n_chunks = max(1, min(4 * numba.get_num_threads(), shape[1] * shape[2]))
+    _k.forward_kernel(padded.ravel(), ny, nx, nz, *_kernel_args(geom), v, n_chunks, out)
     return out
 
 
@@ -271,8 +273,8 @@ def back_project(sinogram, geom: ProjectionGeometry, views=None, dtype=None) -> 
         raise TwinrayInputError(f"sinogram has shape {sinogram.shape}, expected {shape}")
     n_chunks = max(1, min(numba.get_num_threads(), shape[1] * shape[2]))
     nz, ny, nx = geom.grid.shape
-    buffers = np.zeros((n_chunks, ny + 2, nx + 2, nz + 2), dtype=np.float64)
-    _k.back_kernel(sinogram, *_kernel_args(geom), v, buffers)
+    buffers = np.zeros((n_chunks, (ny + 2) * (nx + 2) * (nz + 2)), dtype=np.float64)
+    _k.back_kernel(sinogram, ny, nx, nz, *_kernel_args(geom), v, buffers)
     out = np.empty(geom.grid.shape, dtype=np.dtype(dtype) if dtype is not None else sinogram.dtype)
     _k.sum_buffers_to_zyx(buffers, out)
     return out
