@@ -166,6 +166,22 @@ def test_sinogram_ssrb_truncate_and_empty_frame(capsys, tmp_path, tiny_event_fil
     assert read_sinogram_file(out2).arrays["prompts"].sum() == 0
 
 
+def test_folder_summary_names_ignored_files(capsys, tmp_path, tiny_event_file):
+    """Data contract section 2: in a folder only *.parquet is read; the rest is named in the summary."""
+    folder = tmp_path / "study"
+    folder.mkdir()
+    (folder / "a.parquet").write_bytes(tiny_event_file.read_bytes())
+    (folder / "notes.txt").write_text("x")
+    (folder / ".a.parquet.tmp.part.parquet").write_text("half written")
+    code, stdout, err = run(capsys, "sinogram", folder, "-o", tmp_path / "s.h5")
+    assert code == 0, err
+    assert "notes.txt" in stdout and ".a.parquet.tmp.part.parquet" in stdout
+    code, stdout, err = run(capsys, "sinogram", folder, "-o", tmp_path / "s2.h5", "--json")
+    assert json.loads(stdout)["ignored"] == [".a.parquet.tmp.part.parquet", "notes.txt"]
+    code, stdout, err = run(capsys, "inspect", folder)
+    assert code == 0 and "notes.txt" in stdout
+
+
 def test_inspect_outputs(capsys, tiny_event_file):
     code, stdout, err = run(capsys, "inspect", tiny_event_file, "--rate-bin", "2")
     assert code == 0, err

@@ -91,8 +91,9 @@ def _list_files(path: Path):
     if not path.exists():
         raise TwinrayInputError(f"event path {path} does not exist")
     if path.is_dir():
-        entries = sorted(p for p in path.iterdir() if not p.name.startswith("."))
-        files = [p for p in entries if p.is_file() and p.suffix == ".parquet"]
+        entries = sorted(path.iterdir())
+        # Hidden names (e.g. a writer's temporary ".name.part.parquet") are not read either.
+        files = [p for p in entries if p.is_file() and p.suffix == ".parquet" and not p.name.startswith(".")]
         ignored = tuple(p.name for p in entries if p not in files)
         if not files:
             raise TwinrayInputError(f"event folder {path} contains no *.parquet files")

@@ -103,6 +103,9 @@ def sinogram_command(events, output, scanner, frame, rebin, batch_size, truncate
     run.say(f"  sinogram {g.planes} planes x {g.views} views x {g.radial_bins} radial bins "
             f"(rebin {g.rebin}, span {g.span}, max ring difference {g.max_ring_difference})")
     run.say(f"  frame {c.frame_start_s:g} s + {c.frame_duration_s:g} s")
+    ignored = list(result.source.ignored)
+    if ignored:
+        run.say(f"  ignored in {result.source.path} (not *.parquet): {', '.join(ignored)}")
     run.say(f"  events read {acc.read}: prompts binned {acc.prompts_binned}, delayed binned {acc.delayed_binned}")
     for name, value in acc.to_dict().items():
         if name.startswith("rejected_") and value:
@@ -115,4 +118,5 @@ def sinogram_command(events, output, scanner, frame, rebin, batch_size, truncate
                 f"{c.attrs['scatter_fraction']:.3f}, decay correction factor {c.attrs['decay_correction_factor']:.5g}")
     run.finish({"outputs": [str(result.output)], "accounting": acc.to_dict(), "timings_s": result.timings_s,
                 "warnings": list(result.warnings), "shape": list(g.shape),
-                "frame_start_s": c.frame_start_s, "frame_duration_s": c.frame_duration_s})
+                "frame_start_s": c.frame_start_s, "frame_duration_s": c.frame_duration_s,
+                "event_files": [p.name for p in result.source.paths], "ignored": ignored})
