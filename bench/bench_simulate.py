@@ -114,7 +114,7 @@ def peak_memory_mb(phantom_path, duration):
     )
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / "ev.parquet"
-        proc = subprocess.run([sys.executable, "-c", code, str(phantom_path), "-o", str(out), "--duration",
+        proc = subprocess.run([sys.executable, "-c", code, "simulate", str(phantom_path), "-o", str(out), "--duration",
                                str(duration), "--quiet", "--no-truth"], capture_output=True, text=True,
                               env={**os.environ, "PYTHONPATH": str(ROOT / "src")})
         if proc.returncode != 0:
@@ -160,13 +160,6 @@ def main():
                 "numpy_baseline_annihilations_per_s": n_ann / base_s,
                 "ratio_simulator_to_numpy": base_s / sim_s,
             })
-    memory = []
-    if not args.no_memory:
-        phantom_path = ROOT / "configs" / "phantoms" / "calibration_cylinder.toml"
-        for duration in (1.0, 10.0):
-            mb, size = peak_memory_mb(phantom_path, duration)
-            memory.append({"duration_s": duration, "peak_rss_mb": round(mb, 1), "file_mb": round(size / 1e6, 2)})
-
     print(f"machine: {platform.machine()} {platform.processor() or ''} {os.cpu_count()} cpu(s), "
           f"Python {platform.python_version()}, numpy {np.__version__}, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
     print("| case | annihilations | coincidences/s (trues+scatters) | simulator annihilations/s | "
@@ -176,9 +169,15 @@ def main():
         print(f"| {row['case']} | {row['annihilations']:,} | {row['coincidences_per_s'] / 1e6:.3f} M | "
               f"{row['simulator_annihilations_per_s'] / 1e6:.2f} M | "
               f"{row['numpy_baseline_annihilations_per_s'] / 1e6:.2f} M | {row['ratio_simulator_to_numpy']:.2f} |")
-    for m in memory:
-        print(f"memory: calibration_cylinder {m['duration_s']:g} s -> peak RSS {m['peak_rss_mb']} MB, "
-              f"file {m['file_mb']} MB")
+    sys.stdout.flush()
+    memory = []
+    if not args.no_memory:
+        phantom_path = ROOT / "configs" / "phantoms" / "calibration_cylinder.toml"
+        for duration in (1.0, 10.0):
+            mb, size = peak_memory_mb(phantom_path, duration)
+            memory.append({"duration_s": duration, "peak_rss_mb": round(mb, 1), "file_mb": round(size / 1e6, 2)})
+            print(f"memory: calibration_cylinder {duration:g} s -> peak RSS {mb:.1f} MB, "
+                  f"file {size / 1e6:.2f} MB", flush=True)
     print(json.dumps({"rows": rows, "memory": memory}))
 
 
