@@ -28,7 +28,7 @@ def test_packaged_phantoms_are_copies_of_the_configs():
     """The phantoms inside the package regenerate the same study as configs/ (kept byte-identical)."""
     manifest = demo.load_manifest()
     pairs = [(demo.PACKAGE_DEMO_DIR / manifest[k]["phantom"], REPO / "configs" / manifest[k]["phantom"])
-             for k in ("normscan", "study", "dynamic")]
+             for k in demo.STUDY_KEYS]
     pairs.append((demo.PACKAGE_DEMO_DIR / "scanners" / "benchtop.toml", REPO / "configs" / "scanners" / "benchtop.toml"))
     if not (REPO / "configs").is_dir():
         pytest.skip("no source checkout")
@@ -42,24 +42,25 @@ def test_regions_of_interest_lie_inside_their_compartments():
     from twinray.simulate import load_phantom
 
     manifest = demo.load_manifest()
-    phantom = load_phantom(demo.PACKAGE_DEMO_DIR / manifest["dynamic"]["phantom"])
-    names = [s.name for s in phantom.shapes]
     g = np.linspace(-1.0, 1.0, 11)
     u = np.stack(np.meshgrid(g, g, g, indexing="ij"), axis=-1).reshape(-1, 3)
     u = u[np.linalg.norm(u, axis=1) <= 1.0]
-    for roi in manifest["roi"]:
-        x, y, z, r = roi["sphere"]
-        pts = np.array([x, y, z]) + r * u
-        k = names.index(roi["name"])
-        assert np.all(phantom.shapes[k].contains(*pts.T)), roi
-        for later in phantom.shapes[k + 1:]:
-            assert not np.any(later.contains(*pts.T)), (roi, later.name)
+    for key, rois in (("dynamic", manifest["roi"]), ("study", manifest["study_roi"])):
+        phantom = load_phantom(demo.PACKAGE_DEMO_DIR / manifest[key]["phantom"])
+        names = [s.name for s in phantom.shapes]
+        for roi in rois:
+            x, y, z, r = roi["sphere"]
+            pts = np.array([x, y, z]) + r * u
+            k = names.index(roi["name"])
+            assert np.all(phantom.shapes[k].contains(*pts.T)), roi
+            for later in phantom.shapes[k + 1:]:
+                assert not np.any(later.contains(*pts.T)), (roi, later.name)
 
 
 def test_find_demo_data_order(tmp_path, monkeypatch):
     manifest = demo.load_manifest()
-    names = [manifest[k]["events"] for k in ("normscan", "study", "dynamic")]
-    names.append(manifest["study"]["events"].replace(".parquet", "_truth_mu.nii.gz"))
+    names = [manifest[k]["events"] for k in demo.STUDY_KEYS]
+    names += [manifest[k]["events"].replace(".parquet", "_truth_mu.nii.gz") for k in ("calibration", "study")]
     given = tmp_path / "given"
     given.mkdir()
     for n in names:
@@ -85,12 +86,12 @@ def test_unknown_size_is_refused(tmp_path):
 def test_regenerates_missing_data_from_packaged_phantoms(tmp_path):
     """Without shipped data the study is simulated from the packaged phantoms (short durations here)."""
     manifest = demo.load_manifest()
-    for key in ("normscan", "study", "dynamic"):
+    for key in demo.STUDY_KEYS:
         manifest[key] = {**manifest[key], "duration_s": 0.02}
     seen = []
     target = demo.regenerate_demo_data(manifest, tmp_path / "data", on_step=lambda name, step: seen.append(name))
     assert demo._complete(target, manifest)
-    assert {"simulate normscan", "simulate study", "simulate dynamic"} <= set(seen)
+    assert {f"simulate {k}" for k in demo.STUDY_KEYS} <= set(seen)
     # A second call finds everything and simulates nothing.
     seen.clear()
     demo.regenerate_demo_data(manifest, target, on_step=lambda name, step: seen.append(name))
@@ -119,8 +120,9 @@ def test_demo_small_end_to_end(tmp_path):
     result = json.loads(stdout)
     report = Path(result["report"])
     assert report == out_dir / "report.html" and report.is_file()
-    assert [s["name"] for s in result["steps"]] == ["inspect", "normalize", "sinogram", "FBP", "OSEM", "dynamic",
-                                                     "TAC", "bootstrap", "thinning"]
+    assert [s["name"] for s in result["steps"]] == [
+        "inspect", "normalize", "calibration scan", "calibration image", "calibrate", "sinogram", "FBP", "OSEM",
+        "dynamic", "TAC", "bootstrap", "thinning"]
     acc = result["accounting"]
     assert acc["read"] == acc["prompts_binned"] + acc["delayed_binned"] + sum(
         v for k, v in acc.items() if k.startswith("rejected_"))
@@ -132,6 +134,6 @@ def test_demo_small_end_to_end(tmp_path):
     images = decode_images(parser)
     assert len(images) >= 10
     headings = " | ".join(parser.headings)
-    for expected in ("Events", "Normalization", "Sinogram", "OSEM image", "FBP and OSEM", "Dynamic study",
+    for expected in ("Events", "Normalization", "Sinogram", "OSEM image", "FBP and OSEM", "Recovery", "Dynamic study",
                      "Time-activity curves", "Noise study", "Provenance"):
         assert expected in headings, (expected, headings)

@@ -431,3 +431,29 @@ def test_readers_refuse_bad_files_with_one_line(tmp_path):
     with pytest.raises(TwinrayInputError, match="does not exist"):
         report_for_image(tmp_path / "none.nii.gz", tmp_path / "r.html")
     assert not (tmp_path / "r.html").exists()
+
+
+def test_recovery_rows_on_different_grids(tmp_path):
+    """Regional means on two grids: voxel membership checked with nibabel.affines.apply_affine."""
+    import nibabel as nib
+    from nibabel.affines import apply_affine
+
+    from twinray.report.sections import recovery_rows
+
+    truth = np.full((40, 40, 10), 100.0, np.float32)
+    t_aff = np.diag([1.5, 1.5, 2.0, 1.0])
+    t_aff[:3, 3] = [-29.25, -29.25, -9.0]
+    nib.save(nib.Nifti1Image(truth, t_aff), str(tmp_path / "truth.nii.gz"))
+    img = _write_image(tmp_path / "osem.nii.gz", np.full((24, 24, 6), 80.0), {"Units": "Bq/mL"})
+    zero = _write_image(tmp_path / "zero.nii.gz", np.zeros((24, 24, 6)), {"Units": "Bq/mL"})
+    rows = recovery_rows({"OSEM": img, "none": zero}, tmp_path / "truth.nii.gz", [("a", (4.0, -2.0, 0.0, 6.0))])
+    name, true_mean, voxels, measured = rows[0]
+    assert name == "a" and true_mean == pytest.approx(100.0)
+    assert measured["OSEM"] == (pytest.approx(80.0), pytest.approx(0.8))
+    assert measured["none"][1] == pytest.approx(0.0)
+    aff = nib.load(str(img)).affine
+    ijk = np.stack(np.meshgrid(*[np.arange(n) for n in (24, 24, 6)], indexing="ij"), -1).reshape(-1, 3)
+    xyz = apply_affine(aff, ijk)
+    assert voxels == int(np.sum(np.sum((xyz - [4.0, -2.0, 0.0]) ** 2, axis=1) <= 36.0))
+    with pytest.raises(TwinrayInputError, match="no voxel"):
+        recovery_rows({"OSEM": img}, tmp_path / "truth.nii.gz", [("far", (500.0, 0.0, 0.0, 1.0))])

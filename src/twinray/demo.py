@@ -2,7 +2,9 @@
 
 ``run_demo`` takes the invented bench-top study (``simulated_events/``, made
 by twinray's own simulator), and runs, in order: ``inspect``, ``normalize``,
-``sinogram`` with every correction, ``reconstruct`` by FBP and by OSEM,
+``sinogram`` with every correction, a calibration (``calibrate`` on the
+scan of a cylinder of known concentration), ``reconstruct`` by FBP and by
+OSEM in Bq/mL,
 ``dynamic`` with ``tac``, and a ``resample`` noise study (bootstrap for the
 noise map, thinning for noise against counts). Each step is the real
 subcommand, called in-process with ``--json`` so that its outputs and
@@ -92,8 +94,11 @@ def load_manifest(path=MANIFEST) -> dict:
         raise TwinrayInputError(f"demo manifest {path} is missing; the package is incomplete") from None
 
 
+STUDY_KEYS = ("normscan", "calibration", "study", "dynamic")
+
+
 def _study_files(manifest: dict) -> dict:
-    return {key: manifest[key]["events"] for key in ("study", "dynamic", "normscan")}
+    return {key: manifest[key]["events"] for key in STUDY_KEYS}
 
 
 def _mu_name(events_name: str) -> str:
@@ -102,7 +107,7 @@ def _mu_name(events_name: str) -> str:
 
 
 def _complete(folder: Path, manifest: dict) -> bool:
-    names = list(_study_files(manifest).values()) + [_mu_name(manifest["study"]["events"])]
+    names = list(_study_files(manifest).values()) + [_mu_name(manifest[k]["events"]) for k in ("calibration", "study")]
     return all((folder / n).is_file() for n in names)
 
 
@@ -139,10 +144,10 @@ def find_demo_data(manifest: dict, data_dir=None) -> tuple:
 def regenerate_demo_data(manifest: dict, target: Path, on_step=None) -> Path:
     """Simulate the demo study into ``target`` from the phantoms shipped in the package."""
     target.mkdir(parents=True, exist_ok=True)
-    for key in ("normscan", "study", "dynamic"):
+    for key in STUDY_KEYS:
         entry = manifest[key]
         events = target / entry["events"]
-        if events.is_file() and (key != "study" or (target / _mu_name(entry["events"])).is_file()):
+        if events.is_file() and (target / _mu_name(entry["events"])).is_file():
             continue
         phantom = PACKAGE_DEMO_DIR / entry["phantom"]
         argv = ["simulate", str(phantom), "-o", str(events), "--seed", str(int(entry["seed"]))]
@@ -209,6 +214,9 @@ def demo_plan(manifest: dict, data: Path, out: Path, size: str, workers: int | N
     normscan = data / manifest["normscan"]["events"]
     mu = data / _mu_name(manifest["study"]["events"])
     dyn_mu = data / _mu_name(manifest["dynamic"]["events"])
+    calib = data / manifest["calibration"]["events"]
+    calib_mu = data / _mu_name(manifest["calibration"]["events"])
+    cal = ["--calibration", str(out / "calibration.json")]
     corrections = ["--randoms", "delayed", "--scatter", "tail-fit"]
     frame = ["--frame", s["frame"]] if s.get("frame") else []
     rebin = ["--rebin", s.get("rebin", "ssrb")]
@@ -222,21 +230,27 @@ def demo_plan(manifest: dict, data: Path, out: Path, size: str, workers: int | N
     plan = [
         ("inspect", ["inspect", study]),
         ("normalize", ["normalize", normscan, "-o", out / "norm.h5", *rebin]),
+        ("calibration scan", ["sinogram", calib, "-o", out / "calibration" / "sinogram.h5", "--norm",
+                              out / "norm.h5", "--mu", calib_mu, *corrections, *frame, *rebin]),
+        ("calibration image", ["reconstruct", out / "calibration" / "sinogram.h5", "-o",
+                               out / "calibration" / "osem.nii.gz", *osem, *image]),
+        ("calibrate", ["calibrate", out / "calibration" / "osem.nii.gz", "-o", out / "calibration.json",
+                       "--concentration", str(float(manifest["calibration"]["concentration_bq_per_ml"]))]),
         ("sinogram", ["sinogram", study, "-o", out / "sinogram.h5", "--norm", out / "norm.h5", "--mu", mu,
                       *corrections, *frame, *rebin]),
         ("FBP", ["reconstruct", out / "sinogram.h5", "-o", out / "fbp.nii.gz", "--method", "fbp",
-                 "--filter", s.get("filter", "hann"), *image]),
-        ("OSEM", ["reconstruct", out / "sinogram.h5", "-o", out / "osem.nii.gz", *osem, *image]),
+                 "--filter", s.get("filter", "hann"), *image, *cal]),
+        ("OSEM", ["reconstruct", out / "sinogram.h5", "-o", out / "osem.nii.gz", *osem, *image, *cal]),
         ("dynamic", ["dynamic", dynamic, "-o", out / "dynamic", "--schedule", s["schedule"], *dyn_corr, *rebin,
-                     *osem, *image, *par]),
+                     *osem, *image, *cal, *par]),
         ("TAC", ["tac", out / "dynamic" / "dynamic.nii.gz", "-o", out / "tac.csv", *_roi_args(manifest)]),
         ("bootstrap", ["resample", study, "-o", out / "bootstrap", "--mode", "bootstrap",
                        "--replicates", str(s["replicates"]), "--seed", "11", "--norm", out / "norm.h5", "--mu", mu,
-                       *corrections, *frame, *rebin, *osem, *image, *par]),
+                       *corrections, *frame, *rebin, *osem, *image, *cal, *par]),
         ("thinning", ["resample", study, "-o", out / "thinning", "--mode", "thin",
                       "--fraction", ",".join(f"{f:g}" for f in s["fractions"]),
                       "--replicates", str(s["thin_replicates"]), "--seed", "12", "--norm", out / "norm.h5",
-                      "--mu", mu, *corrections, *frame, *rebin, *osem, *image, *par]),
+                      "--mu", mu, *corrections, *frame, *rebin, *osem, *image, *cal, *par]),
     ]
     return [(name, [str(a) for a in argv]) for name, argv in plan]
 
@@ -274,6 +288,7 @@ def run_demo(output_dir, size: str = "full", workers: int | None = None, data_di
         origin = "regenerated by the simulator from the shipped phantoms"
     if (out.resolve() == data.resolve()):
         raise TwinrayInputError(f"output folder {out} is the demo data folder; choose another")
+    (out / "calibration").mkdir(exist_ok=True)
     for name, argv in demo_plan(manifest, data, out, size, workers):
         _run_step(name, argv, on_step, steps)
     from .demo_report import build_demo_report

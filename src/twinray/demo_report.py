@@ -42,18 +42,23 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
     sections.add_sinogram_sections(rep, out / "sinogram.h5")
     sections.add_image_sections(rep, out / "osem.nii.gz", label="OSEM image")
     sections.add_comparison_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"})
+    truth = data / (manifest["study"]["events"].removesuffix(".parquet") + "_truth_activity.nii.gz")
+    if truth.is_file() and manifest.get("study_roi"):
+        sections.add_recovery_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"}, truth,
+                                       [(r["name"], r["sphere"]) for r in manifest["study_roi"]])
     tac = out / "tac.csv"
     sections.add_dynamic_sections(rep, out / "dynamic", tac_path=tac if tac.is_file() else None)
     if (out / "bootstrap").is_dir():
         sections.add_resample_sections(rep, out / "bootstrap")
     if (out / "thinning").is_dir():
         sections.add_resample_sections(rep, out / "thinning")
-    inputs = [data / manifest[k]["events"] for k in ("normscan", "study", "dynamic")]
-    mu = data / (manifest["study"]["events"].removesuffix(".parquet") + "_truth_mu.nii.gz")
+    inputs = [data / manifest[k]["events"] for k in ("normscan", "calibration", "study", "dynamic")]
+    inputs += [data / (manifest[k]["events"].removesuffix(".parquet") + "_truth_mu.nii.gz")
+               for k in ("calibration", "study")]
     rep.provenance(provenance(command=f"twinray demo -o {out} --size {size}",
                               options={"size": size, "workers": workers or "default", "data": str(data),
                                        "data origin": origin},
-                              inputs=[*inputs, mu]))
+                              inputs=inputs))
     return rep.write(out / "report.html")
 
 

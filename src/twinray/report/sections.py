@@ -557,3 +557,73 @@ def add_resample_sections(report: Report, out_dir) -> None:
 
 def format_fraction(p) -> str:
     return f"{float(p):g}" if _numeric(p) else str(p)
+
+
+# -- recovery against a known truth ------------------------------------------------
+
+def recovery_rows(images: dict, truth_path, regions) -> list:
+    """Regional means of images against a truth image (e.g. the simulator's activity map).
+
+    Parameters
+    ----------
+    images : dict of str to path-like
+        Label -> NIfTI image in the truth's units (e.g. Bq/mL after calibration).
+    truth_path : path-like
+        NIfTI truth image, any grid in the same scanner frame.
+    regions : iterable of (name, (x, y, z, r))
+        Spheres in mm; a voxel belongs to one when its centre is inside.
+
+    Returns
+    -------
+    list of tuple
+        ``(region, true mean, voxels, {label: (mean, mean / true)})`` per region;
+        the ratio is None where the truth is 0.
+    """
+    from ..tac import SphereRegion, region_mask
+
+    truth, t_aff, _ = read_image_with_sidecar(truth_path)
+    truth = truth[..., 0] if truth.ndim == 4 else truth
+    loaded = {}
+    for label, p in images.items():
+        data, aff, _ = read_image_with_sidecar(p)
+        loaded[label] = (data[..., 0] if data.ndim == 4 else data, aff)
+    rows = []
+    for name, (x, y, z, r) in regions:
+        sphere = SphereRegion(str(name), (float(x), float(y), float(z)), float(r))
+        t_mask = region_mask(truth.shape, t_aff, sphere)
+        if not np.any(t_mask):
+            raise TwinrayInputError(f"region {sphere.describe()} holds no voxel of the truth image {truth_path}")
+        true_mean = float(np.mean(truth[t_mask]))
+        measured = {}
+        voxels = 0
+        for label, (data, aff) in loaded.items():
+            mask = region_mask(data.shape, aff, sphere)
+            if not np.any(mask):
+                raise TwinrayInputError(f"region {sphere.describe()} holds no voxel of the {label} image")
+            voxels = int(mask.sum())
+            m = float(np.mean(data[mask]))
+            measured[label] = (m, m / true_mean if true_mean > 0 else None)
+        rows.append((sphere.name, true_mean, voxels, measured))
+    return rows
+
+
+def add_recovery_sections(report: Report, images: dict, truth_path, regions, units: str = "Bq/mL") -> None:
+    """A table of regional means against the truth, with their ratios (recovery)."""
+    rows = recovery_rows(images, truth_path, regions)
+    labels = list(images)
+    report.heading("Recovery against the truth")
+    header = ["region", f"true mean ({units})", "image voxels"]
+    for label in labels:
+        header += [f"{label} mean ({units})", f"{label} / true"]
+    table = []
+    for name, true_mean, voxels, measured in rows:
+        row = [name, true_mean, voxels]
+        for label in labels:
+            m, ratio = measured[label]
+            row += [m, "—" if ratio is None else round(ratio, 3)]
+        table.append(row)
+    report.table(header, table, caption=("Regional means of the reconstructed images against the simulator's "
+                                         "truth (activity at the acquisition start)"))
+    report.paragraph("A ratio of 1 is full recovery. Small hot regions read low (partial-volume effect: the "
+                     "image resolution spreads their activity outwards); cold regions read above zero for the same "
+                     "reason and from residual scatter. Both shrink as regions grow.")
