@@ -53,6 +53,11 @@ def test_decay_corrected_image_needs_no_frame_average(tmp_path):
     image = _cylinder_image(tmp_path / "dc.nii.gz", ImageDecayCorrected=True)
     cal = derive_calibration(image, 5000.0)
     assert cal.expected_image_bq_per_ml == 5000.0
+    # Corrected to an injection 30 min before the acquisition start: the activity was higher then.
+    to_injection = _cylinder_image(tmp_path / "inj.nii.gz", ImageDecayCorrected=True, ImageDecayCorrectionTime=-1800.0)
+    lam = math.log(2) / F18_HALF_LIFE_S
+    cal = derive_calibration(to_injection, 5000.0)
+    assert cal.expected_image_bq_per_ml == pytest.approx(5000.0 * math.exp(lam * 1800.0), rel=1e-4)
 
 
 def test_cli_round_trip_and_errors(tmp_path, capsys):

@@ -9,8 +9,9 @@ reference time) is scanned and reconstructed in counts/s/mL. The factor is::
 the reference time to the acquisition start,
 ``C_start = C_ref * exp(-lambda * (t_start - t_ref))``, and then
 
-* for a decay-corrected image (corrected to the acquisition start):
-  ``C_start``;
+* for a decay-corrected image: the concentration at its decay-correction
+  time ``t_dc`` (sidecar ``ImageDecayCorrectionTime``, s from the
+  acquisition start; 0 when absent), ``C_start * exp(-lambda * t_dc)``;
 * otherwise the frame's average, ``C_start / DCF`` with
   ``DCF = lambda*dt/(1 - exp(-lambda*dt)) * exp(lambda*t0)`` (``decay.py``).
 
@@ -132,7 +133,8 @@ def expected_image_value(concentration_bq_per_ml: float, sidecar: dict, *, refer
     start = float(sidecar.get("FrameTimesStart", [0.0])[0])
     duration = float(sidecar.get("FrameDuration", [0.0])[0])
     corrected = bool(sidecar.get("ImageDecayCorrected", False))
-    needs_decay = reference_time is not None or not corrected
+    corrected_to_s = float(sidecar.get("ImageDecayCorrectionTime", 0.0) or 0.0) if corrected else 0.0
+    needs_decay = reference_time is not None or not corrected or corrected_to_s != 0.0
     if not needs_decay:
         return float(concentration_bq_per_ml)
     if isotope is None:
@@ -148,7 +150,7 @@ def expected_image_value(concentration_bq_per_ml: float, sidecar: dict, *, refer
                    - _parse_time(reference_time, "--reference-time")).total_seconds()
         c_start *= math.exp(-lam * elapsed)
     if corrected:
-        return c_start
+        return c_start * math.exp(-lam * corrected_to_s)
     return c_start / frame_decay_factor(half_life, start, duration)
 
 
