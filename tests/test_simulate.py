@@ -475,3 +475,48 @@ def test_dynamic_truth_images(tmp_path):
     assert labels[tuple(centre)] == names.index("lesion") + 1
     assert activity.get_fdata()[tuple(centre)] == pytest.approx(doc["shapes"][names.index("lesion")]["activity_bq_per_ml"])
     assert doc["shapes"][names.index("vessel")]["tac"]["values"][2] == 1.0
+
+
+def test_pair_acceptance_is_product_of_efficiencies(tmp_path):
+    """Each photon is detected independently with probability proportional to its crystal's
+    efficiency (binomial thinning, Kingman's colouring theorem; references.md s.10), so the pair
+    counts of opposite crystals divided by eps_a * eps_b are equal within each ring pair
+    (chi-square over crystal positions)."""
+    phantom = point_phantom(tmp_path, 1_500_000.0, isotope="Ge-68")
+    out = tmp_path / "eff.parquet"
+    physics = dataclasses_replace(BARE, efficiency_spread=0.3)
+    result = simulate(phantom, out, seed=17, physics=physics)
+    truth = json.loads(truth_paths_for(out)["json"].read_text())
+    eps = np.asarray(truth["crystal_efficiency"])
+    assert eps.mean() == pytest.approx(1.0, rel=1e-6) and eps.std() > 0.2
+    ev = read_events(out)
+    a = np.asarray(ev["crystal_a"])
+    b = np.asarray(ev["crystal_b"])
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    n = 128
+    # from the centre (0.1 mm sphere), the partner is the opposite crystal in the mirrored ring,
+    # except for lines within 0.1 mm of a crystal or ring boundary
+    opposite = (hi % n == (lo % n + n // 2) % n) & (hi // n == 7 - lo // n)
+    assert opposite.mean() > 0.9
+    lo = lo[opposite]
+    for ring in range(4):
+        sel = lo // n == ring
+        if sel.sum() < 2000:
+            continue
+        counts = np.bincount(lo[sel] % n, minlength=n)
+        ca = ring * n + np.arange(n)
+        cb = (7 - ring) * n + (np.arange(n) + n // 2) % n
+        weight = eps[ca] * eps[cb]
+        # pairs (j, j + N/2) and (j + N/2, j) are the same line: fold them
+        folded = counts[: n // 2] + counts[n // 2:]
+        w = weight[: n // 2] + weight[n // 2:]
+        expected = w / w.sum() * folded.sum()
+        chi2 = ((folded - expected) ** 2 / expected).sum()
+        assert chi2 < stats.chi2.ppf(0.999, n // 2 - 1), ring
+    assert result.counts["trues"] == len(a)
+
+
+def dataclasses_replace(obj, **changes):
+    import dataclasses
+
+    return dataclasses.replace(obj, **changes)
