@@ -129,6 +129,13 @@ def test_decay_corrected_frames_are_constant(o15_study, tmp_path):
     # uncorrected mean rates follow the frame-averaged decay curve
     np.testing.assert_allclose(raw / raw[0], expected[0] / expected, rtol=0.06)
     assert raw[3] / raw[0] < 0.4
+    # the time-activity curve of a central sphere, from the written files, is flat too
+    from twinray.tac import tac_from_image
+
+    tac = tac_from_image(tmp_path / "dyn" / "dynamic.nii.gz", ["water=sphere:0,0,0,15"], tmp_path / "tac.csv",
+                         tmp_path / "tac.png")["curves"]
+    np.testing.assert_allclose(tac.frame_mid_s, [30.0, 90.0, 150.0, 210.0])
+    np.testing.assert_allclose(tac.mean[0] / tac.mean[0].mean(), 1.0, atol=0.06)
     # frame accounting adds up to the whole run
     total = {k: sum(fa[k] for fa in side["twinray"]["frame_accounting"]) for k in side["twinray"]["accounting"]}
     assert total == side["twinray"]["accounting"] == result.accounting.to_dict()

@@ -108,7 +108,9 @@ def map_tasks(func, items, shared: dict | None = None, *, workers: int | None = 
         Keyword arguments common to every task (sent to each worker once).
     workers : int, optional
         Local worker processes; ``0`` runs the tasks one after the other in
-        this process without Dask (same numbers).
+        this process without Dask (same numbers). Default: one per core, or
+        in this process when there is a single task (a cluster would only
+        add its start-up time).
     scheduler : str, optional
         Address of an existing Dask scheduler.
     client : distributed.Client, optional
@@ -125,7 +127,7 @@ def map_tasks(func, items, shared: dict | None = None, *, workers: int | None = 
     shared = dict(shared or {})
     if not items:
         return []
-    if client is None and scheduler is None and workers == 0:
+    if client is None and scheduler is None and (workers == 0 or (workers is None and len(items) == 1)):
         out = []
         for item in items:
             out.append(_run_single_threaded(func, item, shared))

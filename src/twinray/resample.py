@@ -51,8 +51,8 @@ from .geometry import SinogramGeometry, sinogram_geometry
 
 MODES = ("bootstrap", "thin")
 
-#: Default memory budget for the replicate sinograms held at once (bytes);
-#: above it the events are read again for the next group of replicates.
+#: Default memory budget for the bin-major working copy of the replicates
+#: (bytes); above it the events are read again for the next group of replicates.
 DEFAULT_MEMORY_BYTES = 2 << 30
 
 
@@ -179,8 +179,9 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     rebin, scanner, batch_size, energy_window
         As in :func:`twinray.binning.bin_events`.
     memory_bytes : int
-        Budget for the replicate sinograms; with more replicates than fit,
-        the events are read once per group of replicates.
+        Budget for the bin-major working copy of the replicate sinograms
+        (the returned stream-major sinograms take as much again); with more
+        replicates than fit, the events are read once per group of replicates.
     progress : callable, optional
         Called with the number of rows after each batch (of each pass).
 

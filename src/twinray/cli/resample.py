@@ -27,12 +27,15 @@ from .dynamic import StageBars, build_options, correction_and_recon_options
 @click.option("--frame", metavar="START:END", default=None,
               help="Resample only events with START <= t < END, s from acquisition start.")
 @click.option("--truncate", is_flag=True, help="Clip a --frame that runs past the data's end.")
+@click.option("--decay-reference", type=click.Choice(["start", "injection"]), default="start", show_default=True,
+              help="Decay-correct the images to the acquisition start or to the injection time.")
 @click.option("--roi", "rois", multiple=True, metavar="NAME=sphere:X,Y,Z,R",
               help="Region for the noise statistics (mm, scanner frame); repeat for more. Default: the object "
                    "(voxels above a quarter of the mean image's 99th percentile).")
 @correction_and_recon_options
 @common_options
-def resample_command(events, output_dir, replicates, mode, fraction_text, seed, frame, truncate, rois, scanner, rebin,
+def resample_command(events, output_dir, replicates, mode, fraction_text, seed, frame, truncate, decay_reference,
+                     rois, scanner, rebin,
                      norm_path, mu_path, randoms, singles_path, scatter, deadtime_ns, method, iterations, subsets,
                      filter_name, cutoff, matrix, voxel_mm, recon_mode, postfilter_mm, calibration,
                      calibration_factor, workers, scheduler, batch_size, memory_gb, run):
@@ -52,6 +55,7 @@ def resample_command(events, output_dir, replicates, mode, fraction_text, seed, 
         twinray resample scan.parquet -o noise --mode bootstrap --replicates 20 --seed 1
         twinray resample scan.parquet -o levels --mode thin --fraction 0.1,0.25,0.5 --replicates 10 --rebin ssrb
     """
+    from ..dynamic import decay_reference_s
     from ..events import open_events
     from ..resample import make_resample, parse_fractions
     from ..tac import parse_region
@@ -63,7 +67,8 @@ def resample_command(events, output_dir, replicates, mode, fraction_text, seed, 
         randoms=randoms, has_delayed=source.has_delayed, scatter=scatter, deadtime_ns=deadtime_ns, method=method,
         iterations=iterations, subsets=subsets, filter_name=filter_name, cutoff=cutoff, matrix=matrix,
         voxel_mm=voxel_mm, recon_mode=recon_mode, postfilter_mm=postfilter_mm, calibration=calibration,
-        calibration_factor=calibration_factor)
+        calibration_factor=calibration_factor,
+        decay_reference_s=decay_reference_s(source.metadata, decay_reference))
     bars = StageBars(run)
     try:
         result = make_resample(source, output_dir, mode=mode, replicates=replicates, fractions=fractions, seed=seed,
