@@ -53,6 +53,14 @@ def reconstruct_command(sinogram, output, method, iterations, subsets, mode, fil
     the file is applied and recorded (ImageDecayCorrected). Image slices sit
     at the planes' z (after SSRB for 3-D data).
 
+    FBP needs the stored `corrected` dataset; a file with no corrections at
+    all is reconstructed from its prompts (with a warning), a file with
+    corrections but no `corrected` dataset is refused. OSEM uses the raw
+    prompts with norm, acf, randoms and scatter in its Poisson model (absent
+    ones count as 1 and 0). For --mode 2d, 3-D data are rebinned by SSRB:
+    counts, randoms, scatter and 1/(norm*acf) are summed over the ring pairs
+    of a plane, so the model holds for the summed data as far as SSRB does.
+
     Examples:
 
     \b
