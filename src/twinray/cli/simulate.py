@@ -21,7 +21,7 @@ _SWITCHES = ("attenuation", "scatter", "randoms", "delayed", "positron_range", "
 @click.option("--duration", type=click.FloatRange(min=0, min_open=True), metavar="SEC",
               help="Acquisition length in seconds (overrides the phantom's duration_s).")
 @click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
-              help="Random seed; the same seed and inputs give a byte-identical event file.")
+              help="Random seed; the same seed, inputs and --chunk-s give a byte-identical event file.")
 @click.option("--start", metavar="ISO", help="Acquisition start, ISO 8601 (time_ns = 0).")
 @click.option("--chunk-s", type=click.FloatRange(min=0, min_open=True), default=1.0, show_default=True,
               metavar="SEC", help="Simulation step in seconds (shortened automatically at high activity).")
