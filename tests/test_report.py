@@ -130,6 +130,9 @@ def test_format_value_never_prints_nan():
     assert format_value(1234567) == "1,234,567"
     assert format_value(np.int64(42)) == "42"
     assert format_value(0.123456) == "0.1235"
+    assert format_value(89534.2) == "89,534"
+    assert format_value(-2224.4) == "-2,224"
+    assert format_value(3.2e-7) == "3.2e-07"
     assert format_value(True) == "yes"
     assert format_value([1, float("nan")]) == "1, n/a"
 
@@ -457,3 +460,24 @@ def test_recovery_rows_on_different_grids(tmp_path):
     assert voxels == int(np.sum(np.sum((xyz - [4.0, -2.0, 0.0]) ** 2, axis=1) <= 36.0))
     with pytest.raises(TwinrayInputError, match="no voxel"):
         recovery_rows({"OSEM": img}, tmp_path / "truth.nii.gz", [("far", (500.0, 0.0, 0.0, 1.0))])
+
+
+def test_true_curves_from_simulation_truth_json(tmp_path):
+    """Truth curves: concentration x the phantom's piecewise-linear multiplier (numpy.interp as reference)."""
+    from twinray.report.sections import _frame_average, true_curves_from_simulation
+
+    truth = {"duration_s": 100.0, "shapes": [
+        {"name": "lesion", "activity_bq_per_ml": 4000.0, "tac": {"times_s": [0, 50, 100], "values": [0, 1, 0.5]}},
+        {"name": "flat", "activity_bq_per_ml": 10.0},
+        {"name": "unused", "activity_bq_per_ml": 1.0}]}
+    (tmp_path / "t.json").write_text(json.dumps(truth))
+    curves = true_curves_from_simulation(tmp_path / "t.json", ["lesion", "flat", "missing"])
+    assert sorted(curves) == ["flat", "lesion"]
+    t, v = curves["lesion"]
+    assert v[np.searchsorted(t, 50.0)] == pytest.approx(4000.0)
+    assert np.interp(75.0, t, v) == pytest.approx(3000.0)
+    np.testing.assert_allclose(curves["flat"][1], 10.0)
+    # Mean of a linear ramp 0 -> 4000 over [0, 50] s is 2000 (trapezoid).
+    assert _frame_average(curves["lesion"], 0.0, 50.0) == pytest.approx(2000.0, rel=1e-3)
+    with pytest.raises(TwinrayInputError, match="truth file"):
+        true_curves_from_simulation(tmp_path / "nope.json", ["lesion"])

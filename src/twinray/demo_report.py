@@ -46,8 +46,13 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
     if truth.is_file() and manifest.get("study_roi"):
         sections.add_recovery_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"}, truth,
                                        [(r["name"], r["sphere"]) for r in manifest["study_roi"]])
+    dynamic = data / manifest["dynamic"]["events"]
+    sections.add_events_sections(rep, dynamic)
     tac = out / "tac.csv"
-    sections.add_dynamic_sections(rep, out / "dynamic", tac_path=tac if tac.is_file() else None)
+    truth_json = data / (manifest["dynamic"]["events"].removesuffix(".parquet") + "_truth.json")
+    truth = (sections.true_curves_from_simulation(truth_json, [r["name"] for r in manifest.get("roi", [])])
+             if truth_json.is_file() else None)
+    sections.add_dynamic_sections(rep, out / "dynamic", tac_path=tac if tac.is_file() else None, truth=truth)
     if (out / "bootstrap").is_dir():
         sections.add_resample_sections(rep, out / "bootstrap")
     if (out / "thinning").is_dir():

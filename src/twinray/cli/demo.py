@@ -46,7 +46,7 @@ def demo_command(output_dir, size, workers, data_dir, run):
             bar.update(1)
             n_warn = len(step.result.get("demo_warnings", []))
             note = f"   ({n_warn} warning{'s' if n_warn != 1 else ''}, listed in the report)" if n_warn else ""
-            run.say(f"  {name:<10} {step.seconds:7.1f} s{note}")
+            run.say(f"  {name:<18} {step.seconds:7.1f} s{note}")
 
         run.say(f"twinray demo ({size}) into {output_dir}")
         result = run_demo(output_dir, size=size, workers=workers, data_dir=data_dir, on_step=on_step)

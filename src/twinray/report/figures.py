@@ -478,7 +478,7 @@ def frames_figure(volume4d, affine, frame_mid_s, units: str = "", max_frames: in
 
 # -- time-activity curves and noise -------------------------------------------
 
-def tac_figure(curves: dict, units: str = ""):
+def tac_figure(curves: dict, units: str = "", truth: dict | None = None):
     """Time-activity curves with frame durations as horizontal bars and region std as error bars.
 
     Parameters
@@ -488,6 +488,8 @@ def tac_figure(curves: dict, units: str = ""):
         per frame).
     units : str
         Units of the mean, e.g. "Bq/mL".
+    truth : dict of str to (ndarray, ndarray), optional
+        Region -> (time s, true value): drawn dashed in the region's colour.
 
     Returns
     -------
@@ -505,9 +507,13 @@ def tac_figure(curves: dict, units: str = ""):
         mean, _ = finite_for_display(c["mean"])
         std, _ = finite_for_display(c.get("std", np.zeros_like(mean)))
         dur, _ = finite_for_display(c.get("duration_s", np.zeros_like(mean)))
+        colour = LINE_COLOURS[n % len(LINE_COLOURS)]
         ax.errorbar(mid / scale, mean, xerr=dur / 2 / scale, yerr=std, label=region,
-                    color=LINE_COLOURS[n % len(LINE_COLOURS)], marker=markers[n % len(markers)], markersize=4,
+                    color=colour, marker=markers[n % len(markers)], markersize=4,
                     linewidth=1.3, capsize=0, elinewidth=0.8)
+        if truth and region in truth:
+            t, v = (finite_for_display(a)[0] for a in truth[region])
+            ax.plot(t / scale, v, color=colour, linestyle="--", linewidth=1.0, label=f"{region} (true)")
     ax.set_xlabel(xlabel)
     ax.set_ylabel(f"region mean ({units})" if units else "region mean")
     ax.grid(alpha=0.3)

@@ -391,24 +391,77 @@ def read_tac_csv(path) -> dict:
     return {r: {k: np.asarray(v) for k, v in c.items()} for r, c in curves.items()}
 
 
-def add_tac_sections(report: Report, tac_path, units: str = "") -> None:
-    """The time-activity curves of a TAC CSV, as a plot and a table."""
+def true_curves_from_simulation(truth_json, regions) -> dict:
+    """True time courses of phantom shapes, from a simulator truth JSON.
+
+    Every shape with a time-activity curve: concentration (Bq/mL) times the
+    curve's multiplier, linearly interpolated (the simulator's model), i.e.
+    the decay-corrected concentration a perfect image would show.
+
+    Parameters
+    ----------
+    truth_json : path-like
+        ``<stem>_truth.json`` written by ``twinray simulate``.
+    regions : iterable of str
+        Region names; those that name a shape get a curve.
+
+    Returns
+    -------
+    dict of str to (ndarray, ndarray)
+        Region -> (times s, Bq/mL) on a 1 s grid over the acquisition.
+    """
+    path = Path(truth_json)
+    try:
+        truth = json.loads(path.read_text())
+    except (OSError, json.JSONDecodeError):
+        raise TwinrayInputError(f"truth file {path} is missing or not valid JSON") from None
+    duration = float(truth.get("duration_s", 0.0) or 0.0)
+    t = np.linspace(0.0, duration, max(int(duration) + 1, 2))
+    out = {}
+    wanted = set(regions)
+    for shape in truth.get("shapes", []):
+        name = shape.get("name")
+        if name not in wanted or not _numeric(shape.get("activity_bq_per_ml")):
+            continue
+        tac = shape.get("tac") or {"times_s": [0.0, max(duration, 1.0)], "values": [1.0, 1.0]}
+        out[name] = (t, float(shape["activity_bq_per_ml"]) * np.interp(t, tac["times_s"], tac["values"]))
+    return out
+
+
+def _frame_average(curve, start: float, duration: float):
+    t, v = curve
+    if duration <= 0:
+        return float(np.interp(start, t, v))
+    grid = np.linspace(start, start + duration, 201)
+    return float(np.mean(np.interp(grid, t, v)))
+
+
+def add_tac_sections(report: Report, tac_path, units: str = "", truth: dict | None = None) -> None:
+    """The time-activity curves of a TAC CSV, as a plot and a table (with true values when given)."""
     curves = read_tac_csv(tac_path)
     report.heading(f"Time-activity curves: {Path(tac_path).name}")
     if not curves:
         report.note("The TAC file has no rows.")
         return
-    report.figure(figures.tac_figure(curves, units=units),
-                  caption="Mean of every region in every frame, plotted at the frame mid-time.")
+    truth = {r: c for r, c in (truth or {}).items() if r in curves}
+    report.figure(figures.tac_figure(curves, units=units, truth=truth),
+                  caption="Mean of every region in every frame, plotted at the frame mid-time"
+                          + ("; dashed: the true concentration of the phantom." if truth else "."))
     rows = []
     for region, c in curves.items():
         for k in range(c["frame"].size):
-            rows.append((region, int(c["frame"][k]), c["mid_s"][k], c["mean"][k], c["std"][k], int(c["voxels"][k])))
-    report.table(["region", "frame", "mid-time (s)", f"mean ({units})" if units else "mean", "std", "voxels"], rows,
-                 caption="Region statistics per frame")
+            row = [region, int(c["frame"][k]), c["mid_s"][k], c["mean"][k], c["std"][k], int(c["voxels"][k])]
+            if truth:
+                row.append(_frame_average(truth[region], c["start_s"][k], c["duration_s"][k])
+                           if region in truth else None)
+            rows.append(row)
+    header = ["region", "frame", "mid-time (s)", f"mean ({units})" if units else "mean", "std", "voxels"]
+    if truth:
+        header.append("true frame mean")
+    report.table(header, rows, caption="Region statistics per frame")
 
 
-def add_dynamic_sections(report: Report, dynamic_dir_or_image, tac_path=None) -> None:
+def add_dynamic_sections(report: Report, dynamic_dir_or_image, tac_path=None, truth: dict | None = None) -> None:
     """The 4-D image of ``dynamic`` (frames, decay factors) and, if given, its TACs."""
     p = Path(dynamic_dir_or_image)
     image = p / "dynamic.nii.gz" if p.is_dir() else p
@@ -424,7 +477,7 @@ def add_dynamic_sections(report: Report, dynamic_dir_or_image, tac_path=None) ->
         report.figure(figures.slices_figure(data, affine, units=str(sidecar.get("Units", ""))),
                       caption="The single frame.")
     if tac_path is not None:
-        add_tac_sections(report, tac_path, units=str(sidecar.get("Units", "")))
+        add_tac_sections(report, tac_path, units=str(sidecar.get("Units", "")), truth=truth)
 
 
 # -- resampling noise study ---------------------------------------------------------
