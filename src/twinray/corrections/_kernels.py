@@ -36,8 +36,8 @@ def _pair_indices(ra, rb, ja, jb, a_is_end1, n, rings, plane_of_rings):
 
 
 @njit(cache=True, nogil=True)
-def pair_product_sinogram(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n, rings,
-                          plane_of_rings, bins_per_plane, radial_bins, out):
+def pair_product_sinogram(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, pair_radial, n, rings,
+                          plane_of_rings, bins_per_plane, out):
     """``out[bin] += factor[a] * factor[b] * pair_table[dr, radial]`` over the crystal pairs of each bin."""
     for ra in range(rings):
         for rb in range(rings):
@@ -46,14 +46,12 @@ def pair_product_sinogram(factor, pair_table, pair_ja, pair_jb, pair_inplane, pa
                                                 plane_of_rings)
                 if plane < 0:
                     continue
-                inplane = pair_inplane[k]
-                radial = inplane % radial_bins
-                out[plane * bins_per_plane + inplane] += factor[a] * factor[b] * pair_table[dr, radial]
+                out[plane * bins_per_plane + pair_inplane[k]] += factor[a] * factor[b] * pair_table[dr, pair_radial[k]]
 
 
 @njit(cache=True, nogil=True)
-def fan_and_table_sums(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n, rings,
-                       plane_of_rings, radial_bins, fan_out, table_out):
+def fan_and_table_sums(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, pair_radial, n, rings,
+                       plane_of_rings, fan_out, table_out):
     """Model sums of the fan-sum normalization for ``m_ab = f_a f_b G[dr, radial]``.
 
     ``fan_out[a] += f_b * G`` (the fan sum of crystal a divided by f_a) and
@@ -67,7 +65,7 @@ def fan_and_table_sums(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_
                                                 plane_of_rings)
                 if plane < 0:
                     continue
-                radial = pair_inplane[k] % radial_bins
+                radial = pair_radial[k]
                 g = pair_table[dr, radial]
                 fan_out[a] += factor[b] * g
                 fan_out[b] += factor[a] * g
@@ -75,8 +73,8 @@ def fan_and_table_sums(factor, pair_table, pair_ja, pair_jb, pair_inplane, pair_
 
 
 @njit(cache=True, nogil=True)
-def binned_fan_em_sums(factor, measured_flat, model_flat, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, n,
-                       rings, plane_of_rings, bins_per_plane, numerator, denominator):
+def binned_fan_em_sums(factor, measured_flat, model_flat, pair_ja, pair_jb, pair_inplane, pair_end1_is_a, pair_radial,
+                       n, rings, plane_of_rings, bins_per_plane, numerator, denominator):
     """One EM step for binned data modelled as ``sum over pairs in bin of f_a f_b``.
 
     Each bin's counts are shared among its pairs in proportion to
@@ -162,12 +160,13 @@ def fan_sums_batch(crystal_a, crystal_b, delayed, use_delayed, energy_a, energy_
 
 
 @njit(cache=True, parallel=True)
-def acf_line_integrals(mu, origin_mm, voxel_mm, transaxial_ends, axial_ends, out):
-    """Line integral of ``mu`` along the nominal LOR of every (plane, view, radial) bin.
+def acf_sinogram(mu_per_cm, origin_mm, voxel_mm, transaxial_ends, axial_ends, out):
+    """``exp(line integral of mu)`` along the nominal LOR of every (plane, view, radial) bin.
 
+    ``mu_per_cm`` in 1/cm (lengths are mm, hence the 1/10);
     ``transaxial_ends`` is (views, radial, 2, 2) (end 1 / end 2, x / y) and
-    ``axial_ends`` (planes, 2) (z of end 1 / end 2); ``out`` is (planes,
-    views, radial).
+    ``axial_ends`` (planes, 2) (z of end 1 / end 2); ``out`` (float32) is
+    (planes, views, radial).
     """
     planes = axial_ends.shape[0]
     views = transaxial_ends.shape[0]
@@ -178,9 +177,10 @@ def acf_line_integrals(mu, origin_mm, voxel_mm, transaxial_ends, axial_ends, out
         z1 = axial_ends[p, 0]
         z2 = axial_ends[p, 1]
         for r in range(radial):
-            out[p, v, r] = siddon_line_integral(mu, origin_mm, voxel_mm,
-                                                transaxial_ends[v, r, 0, 0], transaxial_ends[v, r, 0, 1], z1,
-                                                transaxial_ends[v, r, 1, 0], transaxial_ends[v, r, 1, 1], z2)
+            integral = siddon_line_integral(mu_per_cm, origin_mm, voxel_mm,
+                                            transaxial_ends[v, r, 0, 0], transaxial_ends[v, r, 0, 1], z1,
+                                            transaxial_ends[v, r, 1, 0], transaxial_ends[v, r, 1, 1], z2)
+            out[p, v, r] = np.exp(0.1 * integral)
 
 
 @njit(cache=True, nogil=True)
@@ -205,3 +205,30 @@ def singles_sums(time_ns, crystal, counts, interval_ns, frame_starts, frame_ends
             hi = t1 if t1 < frame_ends[k] else frame_ends[k]
             if hi > lo:
                 out[k, c] += counts[i] * (hi - lo) / interval_ns
+
+
+@njit(cache=True, nogil=True)
+def gaussian_tail_fit(d_tail, y_tail, view_of, use, sigma, views, amp):
+    """Per-view least-squares amplitudes of ``exp(-d^2 / (2 sigma^2))`` on tail bins; returns the residual.
+
+    ``amp`` (views,) receives the amplitudes (clipped at 0); the residual
+    sums only over bins whose view has ``use`` set.
+    """
+    num = np.zeros(views)
+    den = np.zeros(views)
+    shape = np.empty(d_tail.shape[0])
+    inv = 0.5 / (sigma * sigma)
+    for i in range(d_tail.shape[0]):
+        g = np.exp(-d_tail[i] * d_tail[i] * inv)
+        shape[i] = g
+        num[view_of[i]] += g * y_tail[i]
+        den[view_of[i]] += g * g
+    for v in range(views):
+        a = num[v] / den[v] if den[v] > 0.0 else 0.0
+        amp[v] = a if a > 0.0 else 0.0
+    resid = 0.0
+    for i in range(d_tail.shape[0]):
+        if use[i]:
+            r = y_tail[i] - amp[view_of[i]] * shape[i]
+            resid += r * r
+    return resid

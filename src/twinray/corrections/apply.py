@@ -46,7 +46,7 @@ class CorrectionOptions:
         Needs singles rates.
     deadtime_model : {"nonparalysable", "paralysable"}
     randoms_iterations : int
-        EM iterations of the delayed fan-sum fit.
+        Outer EM iterations of the delayed fan-sum fit (spans > 1; one suffices for span 1).
     decay_reference_s : float
         Time the decay-correction factor refers to, s from acquisition start
         (0: acquisition start; negative for an injection before it).
@@ -57,7 +57,7 @@ class CorrectionOptions:
     scatter: str = "none"
     deadtime_ns: float = 0.0
     deadtime_model: str = "nonparalysable"
-    randoms_iterations: int = 10
+    randoms_iterations: int = 5
     decay_reference_s: float = 0.0
     tail_fit: TailFitOptions = TailFitOptions()
 

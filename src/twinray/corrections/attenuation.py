@@ -119,10 +119,9 @@ def attenuation_factors(mu_per_cm, affine, geometry: SinogramGeometry) -> np.nda
         return np.ones(geometry.shape, np.float32)
     trans = np.ascontiguousarray(geometry.transaxial_endpoints_mm(), np.float64)
     axial = np.ascontiguousarray(geometry.axial_endpoints_mm(), np.float64)
-    integrals = np.zeros(geometry.shape, np.float64)
-    _kernels.acf_line_integrals(grid, origin, voxel, trans, axial, integrals)
-    # mu in 1/cm, lengths in mm.
-    return np.exp(integrals / 10.0).astype(np.float32)
+    acf = np.empty(geometry.shape, np.float32)
+    _kernels.acf_sinogram(grid, origin, voxel, trans, axial, acf)
+    return acf
 
 
 def attenuation_factors_from_file(path, geometry: SinogramGeometry) -> np.ndarray:

@@ -314,8 +314,7 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
     args = kernel_arguments(geometry)
     n_pairs_table = np.zeros_like(src)
     scratch_fan = np.zeros_like(F)
-    _kernels.fan_and_table_sums(np.ones_like(F), np.ones_like(src), *args[:4], args[4], args[5], args[6],
-                                geometry.radial_bins, scratch_fan, n_pairs_table)
+    _kernels.fan_and_table_sums(np.ones_like(F), np.ones_like(src), *args, scratch_fan, n_pairs_table)
     covered = (src > 1e-9 * src.max()) & (n_pairs_table > 0)
     if not covered.any():
         raise TwinrayInputError(f"the normalization source ({source.shape}, radius {source.radius_mm:g} mm) "
@@ -325,13 +324,11 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
     for _ in range(int(iterations)):
         fan_model = np.zeros_like(F)
         table_model = np.zeros_like(src)
-        _kernels.fan_and_table_sums(eps, np.ascontiguousarray(g * src), *args[:4], args[4], args[5], args[6],
-                                    geometry.radial_bins, fan_model, table_model)
+        _kernels.fan_and_table_sums(eps, np.ascontiguousarray(g * src), *args, fan_model, table_model)
         eps = np.where(fan_model > 0, F / np.where(fan_model > 0, fan_model, 1.0), 0.0)
         fan_model[:] = 0.0
         table_model[:] = 0.0
-        _kernels.fan_and_table_sums(eps, np.ascontiguousarray(g * src), *args[:4], args[4], args[5], args[6],
-                                    geometry.radial_bins, fan_model, table_model)
+        _kernels.fan_and_table_sums(eps, np.ascontiguousarray(g * src), *args, fan_model, table_model)
         denom = table_model * src
         g = np.where(covered & (denom > 0), M / np.where(denom > 0, denom, 1.0), 0.0)
     notes = []

@@ -48,11 +48,15 @@ def inplane_pairs(geometry: SinogramGeometry):
 
 
 def kernel_arguments(geometry: SinogramGeometry) -> tuple:
-    """The geometry arguments shared by the crystal-pair kernels."""
+    """The geometry arguments shared by the crystal-pair kernels.
+
+    ``(ja, jb, inplane, end1_is_a, radial, crystals_per_ring, rings, plane_of_rings)``.
+    """
     ja, jb, inplane, end1 = inplane_pairs(geometry)
     sc = geometry.scanner
     plane_of_rings = np.ascontiguousarray(geometry.plane_of_rings, dtype=np.int32)
-    return ja, jb, inplane, end1, sc.crystals_per_ring, sc.rings, plane_of_rings
+    radial = np.ascontiguousarray(inplane % geometry.radial_bins)
+    return ja, jb, inplane, end1, radial, sc.crystals_per_ring, sc.rings, plane_of_rings
 
 
 def ring_difference_count(geometry: SinogramGeometry) -> int:
@@ -60,7 +64,7 @@ def ring_difference_count(geometry: SinogramGeometry) -> int:
     return 2 * geometry.scanner.rings - 1
 
 
-def pair_product_sinogram(geometry: SinogramGeometry, crystal_factor=None, pair_table=None) -> np.ndarray:
+def pair_product_sinogram(geometry: SinogramGeometry, crystal_factor=None, pair_table=None, dtype=None) -> np.ndarray:
     """Sum over the crystal pairs of each bin of ``f_a * f_b * table[ring difference, radial]``.
 
     Parameters
@@ -71,10 +75,13 @@ def pair_product_sinogram(geometry: SinogramGeometry, crystal_factor=None, pair_
     pair_table : ndarray, shape (2*rings - 1, radial_bins), optional
         Factor per ring difference (end 1 minus end 2, offset by rings - 1)
         and radial bin (default 1).
+    dtype : numpy dtype, optional
+        Of the result (default float64; float32 halves the memory of large
+        sinograms).
 
     Returns
     -------
-    ndarray of float64, shape ``geometry.shape``
+    ndarray, shape ``geometry.shape``
         With both defaults: the number of crystal pairs in each bin.
     """
     sc = geometry.scanner
@@ -85,23 +92,23 @@ def pair_product_sinogram(geometry: SinogramGeometry, crystal_factor=None, pair_
         raise ValueError(f"crystal factor has shape {f.shape}, expected ({sc.n_crystals},)")
     if table.shape != (ring_difference_count(geometry), geometry.radial_bins):
         raise ValueError(f"pair table has shape {table.shape}")
-    out = np.zeros(geometry.n_bins)
-    ja, jb, inplane, end1, n, rings, por = kernel_arguments(geometry)
-    _kernels.pair_product_sinogram(f, table, ja, jb, inplane, end1, n, rings, por,
-                                   geometry.views * geometry.radial_bins, geometry.radial_bins, out)
+    out = np.zeros(geometry.n_bins, dtype=np.float64 if dtype is None else dtype)
+    _kernels.pair_product_sinogram(f, table, *kernel_arguments(geometry), geometry.views * geometry.radial_bins, out)
     return out.reshape(geometry.shape)
 
 
-@functools.lru_cache(maxsize=8)
-def _pairs_per_bin_cached(geometry_key, geometry):
-    out = pair_product_sinogram(geometry)
+@functools.lru_cache(maxsize=4)
+def pairs_per_bin(geometry: SinogramGeometry) -> np.ndarray:
+    """Number of crystal pairs in each bin (1 everywhere for span 1 and unmashed views); read-only, cached."""
+    out = pair_product_sinogram(geometry, dtype=np.float32)
     out.setflags(write=False)
     return out
 
 
-def pairs_per_bin(geometry: SinogramGeometry) -> np.ndarray:
-    """Number of crystal pairs in each bin (1 everywhere for span 1 and unmashed views)."""
-    return _pairs_per_bin_cached(id(geometry), geometry)
+@functools.lru_cache(maxsize=4)
+def one_pair_per_bin(geometry: SinogramGeometry) -> bool:
+    """True when no bin holds more than one crystal pair (then per-bin and per-pair data are the same)."""
+    return float(pairs_per_bin(geometry).max()) <= 1.0
 
 
 def pair_ring_difference_mm(geometry: SinogramGeometry) -> np.ndarray:

@@ -6,9 +6,11 @@ pair (a, b) are expected at ``R_ab = 2*tau*S_a*S_b``, a product of
 per-crystal factors, so the model ``R_ab = r_a * r_b`` fitted to the delayed
 data by maximum likelihood (each crystal factor estimated from its whole fan
 of thousands of LORs) gives an estimate that is nearly noise-free while
-keeping the total. The fit works on the binned delayed sinogram (EM for the
-product model: each bin's counts are shared among its crystal pairs in
-proportion to ``r_a r_b``), so it is exact for any span or view mashing.
+keeping the total. The fit works on the binned delayed sinogram: each bin's
+counts are shared among its crystal pairs (in proportion to ``r_a r_b``,
+EM), so it holds for any span or view mashing, and the likelihood equations
+of the crystal factors are solved with the fan written as a product of a
+ring-pair mask and an in-plane mask (see :func:`fit_crystal_factors`).
 
 ``singles``: ``R_ab = 2*tau*S_a*S_b * T`` from measured singles rates (data
 contract section 2 singles file), ``2*tau`` being the coincidence window
@@ -34,7 +36,7 @@ import numpy as np
 from ..errors import TwinrayInputError
 from ..geometry import SinogramGeometry
 from . import _kernels
-from .pairs import kernel_arguments, pair_product_sinogram
+from .pairs import kernel_arguments, one_pair_per_bin, pair_product_sinogram, pairs_per_bin
 
 RANDOMS_METHODS = ("delayed", "singles", "none")
 
@@ -52,17 +54,51 @@ def crystal_fan_sums(sinogram, geometry: SinogramGeometry, weights=None) -> np.n
     """
     n_crystals = geometry.scanner.n_crystals
     w = np.ones(n_crystals) if weights is None else np.ascontiguousarray(weights, np.float64)
-    model = pair_product_sinogram(geometry, w).reshape(-1)
+    model = (pairs_per_bin(geometry) if weights is None else pair_product_sinogram(geometry, w, dtype=np.float32))
     num = np.zeros(n_crystals)
     den = np.zeros(n_crystals)
-    ja, jb, inplane, end1, n, rings, por = kernel_arguments(geometry)
-    _kernels.binned_fan_em_sums(w, np.ascontiguousarray(sinogram, np.float64).reshape(-1), model, ja, jb, inplane,
-                                end1, n, rings, por, geometry.views * geometry.radial_bins, num, den)
+    _kernels.binned_fan_em_sums(w, np.ascontiguousarray(sinogram, np.float32).reshape(-1), model.reshape(-1),
+                                *kernel_arguments(geometry), geometry.views * geometry.radial_bins, num, den)
     return num
 
 
-def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 10) -> np.ndarray:
-    """Maximum-likelihood per-crystal factors ``r`` of ``sinogram ~ Poisson(sum_pairs r_a r_b)``.
+def _fan_operators(geometry: SinogramGeometry):
+    """Ring-pair and in-plane masks whose product is the fan of every crystal.
+
+    Crystal (ra, ja) is in coincidence with (rb, jb) when ``rings_ok[ra, rb]``
+    and ``inplane_ok[ja, jb]``, so the sum of ``r`` over its fan is
+    ``(rings_ok @ r @ inplane_ok)[ra, ja]`` with ``r`` shaped (rings,
+    crystals_per_ring). None when the ring condition depends on which
+    crystal is end 1 (then the pair kernels are used).
+    """
+    por = np.asarray(geometry.plane_of_rings)
+    rings_ok = por >= 0
+    if not np.array_equal(rings_ok, rings_ok.T):
+        return None
+    inplane_ok = np.asarray(geometry.inplane_bin) >= 0
+    return rings_ok.astype(np.float64), inplane_ok.astype(np.float64)
+
+
+def _solve_fan_equations(fan, rings_ok, inplane_ok, shape, iterations=200, tol=1e-10):
+    """Solve ``r_a * sum_(b in fan a) r_b = D_a`` (the ML equations of the product model) by fixed point."""
+    total = 0.5 * fan.sum()
+    r = fan / np.sqrt(max(fan.sum(), 1e-300))
+    for _ in range(iterations):
+        fan_of_r = (rings_ok @ r.reshape(shape) @ inplane_ok).reshape(-1)
+        new = np.where(fan_of_r > 0, fan / np.where(fan_of_r > 0, fan_of_r, 1.0), 0.0)
+        # The plain update maps c*r to r/c; restoring the total (a property of the ML solution)
+        # removes that oscillation.
+        model_total = 0.5 * np.dot(new, (rings_ok @ new.reshape(shape) @ inplane_ok).reshape(-1))
+        new *= np.sqrt(total / max(model_total, 1e-300))
+        done = np.max(np.abs(new - r)) <= tol * max(np.max(np.abs(new)), 1e-300)
+        r = new
+        if done:
+            break
+    return r
+
+
+def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 5) -> np.ndarray:
+    """Maximum-likelihood per-crystal factors ``r`` of ``sinogram ~ Poisson(sum over the bin's pairs of r_a r_b)``.
 
     Parameters
     ----------
@@ -70,7 +106,9 @@ def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 
         Counts (e.g. delayed coincidences).
     geometry : SinogramGeometry
     iterations : int
-        EM iterations after the closed-form start.
+        Outer EM iterations (sharing each bin's counts among its crystal
+        pairs in proportion to the current ``r_a r_b``); when every bin holds
+        one pair the first is exact and no more are made.
 
     Returns
     -------
@@ -78,35 +116,50 @@ def fit_crystal_factors(sinogram, geometry: SinogramGeometry, iterations: int = 
 
     Notes
     -----
-    Start: ``r_a = D_a / sqrt(sum D)`` from the fan sums ``D`` (exact when
-    every crystal sees the same fan), then EM updates
-    ``r_a <- (share of the counts on a's fan) / sum_(b in fan a) r_b``, each
-    followed by a common rescaling so the model total equals the total count
-    (a property of the ML solution; it stops the scale from oscillating).
+    For per-pair data the likelihood equations are ``r_a * sum_(b in fan
+    a) r_b = D_a`` with ``D_a`` the fan sum of crystal a (Casey & Hoffman
+    1986). The fan of a crystal is a product of a ring-pair mask and an
+    in-plane mask, so the fan sums of ``r`` are two small matrix products
+    and the equations are solved by a fixed-point iteration in
+    milliseconds; only the fan sums of the data need a pass over every
+    crystal pair.
     """
-    data = np.ascontiguousarray(sinogram, np.float64).reshape(-1)
-    total = data.sum()
+    data = np.asarray(sinogram)
     n_crystals = geometry.scanner.n_crystals
-    if total <= 0:
+    if data.sum() <= 0:
         return np.zeros(n_crystals)
-    ja, jb, inplane, end1, n, rings, por = kernel_arguments(geometry)
-    bins_per_plane = geometry.views * geometry.radial_bins
-    fan = crystal_fan_sums(sinogram, geometry)
-    # Closed-form start (exact for complete, identical fans); EM fixes the rest.
-    r = fan / np.sqrt(fan.sum())
-    for _ in range(int(iterations)):
-        model = pair_product_sinogram(geometry, r).reshape(-1)
-        num = np.zeros(n_crystals)
-        den = np.zeros(n_crystals)
-        _kernels.binned_fan_em_sums(r, data, model, ja, jb, inplane, end1, n, rings, por, bins_per_plane, num, den)
-        r = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
-        # The simultaneous update overshoots the overall scale (scaling every r by c maps to 1/c);
-        # the ML solution reproduces the total count, so restore it.
-        r *= np.sqrt(total / max(pair_product_sinogram(geometry, r).sum(), 1e-300))
+    ops = _fan_operators(geometry)
+    exact = one_pair_per_bin(geometry)
+    outer = 1 if exact else max(1, int(iterations))
+    r = None
+    for _ in range(outer):
+        fan = crystal_fan_sums(data, geometry, r)
+        if ops is None:
+            r = _fit_with_pair_kernels(data, geometry, fan)
+        else:
+            shape = (geometry.scanner.rings, geometry.scanner.crystals_per_ring)
+            r = _solve_fan_equations(fan, ops[0], ops[1], shape)
     return r
 
 
-def randoms_from_delayed(delayed, geometry: SinogramGeometry, iterations: int = 10) -> np.ndarray:
+def _fit_with_pair_kernels(data, geometry: SinogramGeometry, fan, iterations: int = 20) -> np.ndarray:
+    """Fallback EM over crystal pairs for geometries whose fans do not factor."""
+    n_crystals = geometry.scanner.n_crystals
+    total = float(np.sum(data))
+    flat = np.ascontiguousarray(data, np.float32).reshape(-1)
+    r = fan / np.sqrt(max(fan.sum(), 1e-300))
+    for _ in range(iterations):
+        model = pair_product_sinogram(geometry, r, dtype=np.float32).reshape(-1)
+        num = np.zeros(n_crystals)
+        den = np.zeros(n_crystals)
+        _kernels.binned_fan_em_sums(r, flat, model, *kernel_arguments(geometry),
+                                    geometry.views * geometry.radial_bins, num, den)
+        r = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+        r *= np.sqrt(total / max(float(pair_product_sinogram(geometry, r).sum()), 1e-300))
+    return r
+
+
+def randoms_from_delayed(delayed, geometry: SinogramGeometry, iterations: int = 5) -> np.ndarray:
     """Variance-reduced randoms sinogram from the delayed-window sinogram.
 
     Parameters
@@ -126,7 +179,7 @@ def randoms_from_delayed(delayed, geometry: SinogramGeometry, iterations: int = 
     Casey and Hoffman, J Comput Assist Tomogr 10:845-850, 1986.
     """
     r = fit_crystal_factors(delayed, geometry, iterations)
-    return pair_product_sinogram(geometry, r).astype(np.float32)
+    return pair_product_sinogram(geometry, r, dtype=np.float32)
 
 
 def randoms_from_singles(singles_rate_cps, geometry: SinogramGeometry, frame_duration_s: float) -> np.ndarray:
@@ -157,7 +210,7 @@ def randoms_from_singles(singles_rate_cps, geometry: SinogramGeometry, frame_dur
                                 f"{geometry.scanner.n_crystals} crystals")
     window_s = geometry.scanner.coincidence_window_ns * 1e-9
     factor = rates * np.sqrt(window_s * float(frame_duration_s))
-    return pair_product_sinogram(geometry, factor).astype(np.float32)
+    return pair_product_sinogram(geometry, factor, dtype=np.float32)
 
 
 def read_singles_rates(path, n_crystals: int, frames_s, batch_size: int = 1 << 20) -> np.ndarray:
