@@ -107,6 +107,29 @@ def _run_cli(argv):
     return code, out.getvalue(), err.getvalue()
 
 
+def test_demo_bad_input_is_one_error_line(tmp_path):
+    """A missing data folder, an unknown size, an output that is the data folder: one `error:` line each."""
+    manifest = demo.load_manifest()
+    data = tmp_path / "data"
+    data.mkdir()
+    for n in manifest["study"]["events"], "x.txt":
+        (data / n).write_bytes(b"")
+    for argv in (["demo", "-o", str(tmp_path / "o"), "--data", str(tmp_path / "missing")],
+                 ["demo", "-o", str(tmp_path / "o"), "--data", str(data)],
+                 ["demo", "-o", str(tmp_path / "o"), "--size", "huge"]):
+        code, stdout, stderr = _run_cli(argv)
+        assert code != 0
+        lines = stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("error:"), stderr
+        assert "Traceback" not in stderr
+    # Every file present but not Parquet: the first step names itself in the error.
+    for key in demo.STUDY_KEYS:
+        (data / manifest[key]["events"]).write_text("not parquet")
+        (data / manifest[key]["events"].replace(".parquet", "_truth_mu.nii.gz")).write_text("not nifti")
+    code, _, stderr = _run_cli(["demo", "-o", str(tmp_path / "o"), "--data", str(data)])
+    assert code == 1 and stderr.startswith("error: demo step 'twinray inspect'") and stderr.count("\n") == 1
+
+
 def test_demo_small_end_to_end(tmp_path):
     """`twinray demo --size small --json`: JSON parses, the report parses, images decode, no NaN."""
     from twinray.cli.main import COMMANDS

@@ -169,7 +169,9 @@ def _run_json(argv: list) -> dict:
         with contextlib.redirect_stdout(buf), contextlib.redirect_stderr(err):
             cli.main(args=[*argv, "--json"], prog_name="twinray", standalone_mode=False)
     except click.ClickException as exc:
-        raise TwinrayInputError(f"demo step '{' '.join(argv[:1])}': {exc.format_message()}") from None
+        raise TwinrayInputError(f"demo step 'twinray {' '.join(argv[:1])}': {exc.format_message()}") from None
+    except TwinrayInputError as exc:
+        raise TwinrayInputError(f"demo step 'twinray {' '.join(argv[:1])}': {exc}") from exc
     warnings = [line[len("warning:"):].strip() for line in err.getvalue().splitlines()
                 if line.startswith("warning:")]
     lines = [line for line in buf.getvalue().splitlines() if line.strip()]
