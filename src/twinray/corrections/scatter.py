@@ -172,16 +172,16 @@ def tail_fit_scatter(emission, norm, acf, geometry: SinogramGeometry, options: T
     if acf is None:
         raise TwinrayInputError("--scatter tail-fit needs a mu-map (--mu): the object edge comes from the ACF")
     s = np.asarray(geometry.radial_positions_mm, dtype=np.float64)[None, :]
-    norm = np.asarray(norm, dtype=np.float64)
     out = np.zeros(geometry.shape, np.float32)
     missing = 0
     for p in range(geometry.planes):
-        y = np.asarray(emission[p], dtype=np.float64) * norm[p]
+        norm_p = np.asarray(norm[p], dtype=np.float64)
+        y = np.asarray(emission[p], dtype=np.float64) * norm_p
         fitted, _, ok = _fit_plane(y, np.asarray(acf[p], dtype=np.float64), s, options)
         if not ok:
             missing += 1
             continue
-        out[p] = np.where(norm[p] > 0, fitted / np.where(norm[p] > 0, norm[p], 1.0), 0.0)
+        out[p] = np.where(norm_p > 0, fitted / np.where(norm_p > 0, norm_p, 1.0), 0.0)
     return out, missing
 
 
