@@ -481,3 +481,29 @@ def test_true_curves_from_simulation_truth_json(tmp_path):
     assert _frame_average(curves["lesion"], 0.0, 50.0) == pytest.approx(2000.0, rel=1e-3)
     with pytest.raises(TwinrayInputError, match="truth file"):
         true_curves_from_simulation(tmp_path / "nope.json", ["lesion"])
+
+
+def test_report_option_and_write_report(tmp_path):
+    """The shared --report option: absent -> nothing; given -> the report; never over an input."""
+    import click
+    from click.testing import CliRunner
+
+    from twinray.cli._common import Run
+    from twinray.cli._report import report_option, write_report
+
+    sino = _write_sinogram(tmp_path / "sino.h5")
+
+    @click.command()
+    @report_option
+    def cmd(report_path):
+        outputs = write_report(Run(False, True, False), report_path, "report_for_sinogram", sino, inputs=[sino, None])
+        click.echo(json.dumps(outputs))
+
+    runner = CliRunner()
+    assert json.loads(runner.invoke(cmd, []).output) == []
+    res = runner.invoke(cmd, ["--report", str(tmp_path / "r.html")])
+    assert json.loads(res.output) == [str(tmp_path / "r.html")]
+    _check_report(tmp_path / "r.html", ["Sinogram: sino.h5"])
+    res = runner.invoke(cmd, ["--report", str(sino)])
+    assert isinstance(res.exception, TwinrayInputError) and "overwrite" in str(res.exception)
+    assert "--report REPORT.html" in runner.invoke(cmd, ["--help"]).output

@@ -39,7 +39,8 @@ def _finish(report: Report, report_path, command: str, options, inputs) -> Path:
     return report.write(report_path)
 
 
-def report_for_events(events_path, report_path, *, scanner=None, command: str = "", options=None) -> Path:
+def report_for_events(events_path, report_path, *, scanner=None, command: str = "", options=None,
+                      inputs=()) -> Path:
     """Report of ``twinray inspect``: counts by kind, metadata, count rate over time.
 
     Parameters
@@ -54,6 +55,8 @@ def report_for_events(events_path, report_path, *, scanner=None, command: str = 
         The command line, for the provenance.
     options : dict, optional
         Options as used.
+    inputs : iterable of path-like
+        Files to checksum (default: the events).
 
     Returns
     -------
@@ -61,7 +64,7 @@ def report_for_events(events_path, report_path, *, scanner=None, command: str = 
     """
     rep = Report(f"Events {Path(events_path).name}", "twinray inspect")
     sections.add_events_sections(rep, events_path, scanner=scanner)
-    return _finish(rep, report_path, command, options, [events_path])
+    return _finish(rep, report_path, command, options, list(inputs) or [events_path])
 
 
 def report_for_sinogram(sinogram_path, report_path, *, events_path=None, scanner=None, plane=None,
