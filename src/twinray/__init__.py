@@ -52,6 +52,13 @@ __all__ = [
     "time_activity_curves",
     "tac_from_image",
     "map_tasks",
+    "CorrectionOptions",
+    "CorrectionInputs",
+    "prepare_corrections",
+    "apply_corrections",
+    "make_normalization",
+    "attenuation_factors",
+    "line_integrals",
 ]
 
 # Heavy modules (pyarrow, numba) load on first use, so `twinray --help` stays quick.
@@ -71,6 +78,10 @@ _LAZY = {
     "FrameSchedule": "schedule", "parse_schedule": "schedule", "load_schedule": "schedule",
     "make_dynamic": "dynamic", "bin_replicates": "resample", "make_resample": "resample",
     "time_activity_curves": "tac", "tac_from_image": "tac", "map_tasks": "parallel",
+    "CorrectionOptions": "corrections.apply", "CorrectionInputs": "corrections.apply",
+    "prepare_corrections": "corrections.apply", "apply_corrections": "corrections.apply",
+    "make_normalization": "corrections.normalization", "attenuation_factors": "corrections.attenuation",
+    "line_integrals": "raytrace",
 }
 
 
