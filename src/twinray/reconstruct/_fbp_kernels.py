@@ -9,12 +9,14 @@ from numba import njit, prange
 
 
 @njit(cache=True, parallel=True, fastmath=True)
-def backproject_filtered(filtered, cos_phi, sin_phi, s0_mm, tau_mm, x_mm, y_mm, scale, out):
+def backproject_filtered(filtered, cos_phi, sin_phi, s0_mm, tau_mm, x_mm, y_mm, scale, fov_radius_mm, out):
     """``out[p, j, i] = scale * sum_v Q[p, v](x_i cos(phi_v) + y_j sin(phi_v))``.
 
     Linear interpolation between the uniform radial samples
-    ``s_k = s0_mm + k*tau_mm``; 0 outside them. Each thread owns whole image
-    rows (a gather, so no write races). ``x_mm`` must be evenly spaced.
+    ``s_k = s0_mm + k*tau_mm``; 0 outside them and outside the circle of
+    radius ``fov_radius_mm`` (no LOR measures those voxels). Each thread owns
+    whole image rows (a gather, so no write races). ``x_mm`` must be evenly
+    spaced.
     """
     n_planes, n_views, n_radial = filtered.shape
     ny = y_mm.shape[0]
@@ -25,12 +27,20 @@ def backproject_filtered(filtered, cos_phi, sin_phi, s0_mm, tau_mm, x_mm, y_mm, 
         j = item % ny
         y = y_mm[j]
         row = np.zeros(nx)
+        # Columns inside the field-of-view circle on this row.
+        half = fov_radius_mm ** 2 - y * y
+        i_lo, i_hi = 0, -1
+        if half >= 0.0 and nx > 0:
+            half = math.sqrt(half)
+            step = dx if dx > 0 else 1.0
+            i_lo = max(0, int(math.ceil((-half - x_mm[0]) / step)))
+            i_hi = min(nx - 1, int(math.floor((half - x_mm[0]) / step)))
         for v in range(n_views):
             # u is linear along the row: u_i = u_0 + i*du.
             u0 = (x_mm[0] * cos_phi[v] + y * sin_phi[v] - s0_mm) / tau_mm
             du = dx * cos_phi[v] / tau_mm
             q = filtered[p, v]
-            for i in range(nx):
+            for i in range(i_lo, i_hi + 1):
                 u = u0 + i * du
                 k = int(math.floor(u))
                 if k >= 0 and k < n_radial - 1:

@@ -62,7 +62,8 @@ def fbp_uniform(sinogram: np.ndarray, view_angles_rad, first_radial_mm: float, r
     Returns
     -------
     ndarray of float64, shape (planes, ny, nx)
-        The image, in the unit of the line integrals per mm.
+        The image, in the unit of the line integrals per mm; 0 outside the
+        circle of radius ``max |s|`` that the projections cover.
 
     References
     ----------
@@ -77,9 +78,11 @@ def fbp_uniform(sinogram: np.ndarray, view_angles_rad, first_radial_mm: float, r
     filtered = np.ascontiguousarray(filter_projections(sino, radial_spacing_mm, filter_name, cutoff))
     phi = np.asarray(view_angles_rad, dtype=np.float64)
     out = np.empty(grid.shape, dtype=np.float64)
+    n = sino.shape[-1]
+    fov = max(abs(first_radial_mm), abs(first_radial_mm + (n - 1) * radial_spacing_mm))
     _fbp_kernels.backproject_filtered(filtered, np.cos(phi), np.sin(phi), float(first_radial_mm),
                                       float(radial_spacing_mm), grid.x_mm(), grid.y_mm(),
-                                      np.pi / len(phi), out)
+                                      np.pi / len(phi), float(fov), out)
     return out
 
 
