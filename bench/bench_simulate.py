@@ -37,7 +37,7 @@ from twinray.scanner import load_scanner  # noqa: E402
 from twinray.simulate import PhysicsOptions, load_phantom  # noqa: E402
 from twinray.simulate import _kernels as K  # noqa: E402
 from twinray.simulate.simulator import (  # noqa: E402
-    FWHM_TO_SIGMA, NONCOLLINEARITY_SIGMA_RAD, _chunk_envelopes, _prepare_source,
+    FWHM_TO_SIGMA, NONCOLLINEARITY_SIGMA_RAD, _prepare_source, emission_means,
 )
 from twinray.isotopes import get_isotope, mean_positron_range_mm  # noqa: E402
 
@@ -62,14 +62,12 @@ def kernel_run(phantom, physics, seconds, seed=1):
     prob = np.full(scanner.n_crystals, 0.9)
     range_mm = mean_positron_range_mm(iso.name) if physics.positron_range else 0.0
     nc = NONCOLLINEARITY_SIGMA_RAD if physics.non_collinearity else 0.0
-    bbox_ml = 8.0 * np.prod(src.params[:, 3:6], axis=1) / 1000.0
     step = 0.25
     n_ann = n_coinc = 0
     elapsed = 0.0
     for k in range(int(round(seconds / step))):
         t0 = k * step
-        env = _chunk_envelopes(src, lam, t0, t0 + step)
-        means = src.concentrations * bbox_ml * pf * env * step
+        means, env = emission_means(src, lam, pf, t0, t0 + step)
         start = time.perf_counter()
         K.seed_rng(seed + k)
         xs, ys, zs, ts, _ = K.emit_from_shapes(src.kinds, src.params, means, env, src.tac_times, src.tac_values,

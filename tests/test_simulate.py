@@ -520,3 +520,40 @@ def dataclasses_replace(obj, **changes):
     import dataclasses
 
     return dataclasses.replace(obj, **changes)
+
+
+def test_emission_points_uniform_in_shapes():
+    """Points are uniform inside each shape (volume fractions of the inner half-size shape:
+    1/8 for an ellipsoid, 1/4 for a cylinder's inner radius, elementary geometry) and none
+    fall where a later shape replaces the earlier one."""
+    rot = math.radians(30.0)
+    params = np.array([
+        [0.0, 0.0, 0.0, 30.0, 30.0, 10.0, 1.0, 0.0],                       # cylinder
+        [0.0, 20.0, 0.0, 4.0, 4.0, 4.0, 1.0, 0.0],                          # box replacing part of it
+        [85.0, -3.0, 1.0, 20.0, 10.0, 6.0, math.cos(rot), math.sin(rot)],  # ellipsoid, apart
+    ])
+    kinds = np.array([K.CYLINDER, K.BOX, K.ELLIPSOID], dtype=np.int32)
+    K.seed_rng(3)
+    n = 200_000
+    xs, ys, zs, ts, which = K.emit_from_shapes(
+        kinds, params, np.array([n, 0.0, n]), np.ones(3), np.zeros((3, 1)), np.zeros((3, 1)),
+        np.zeros(3, dtype=np.int64), 1e-4, 0.0, 1.0, 0.0)
+    e = which == 2
+    assert e.sum() > 0.99 * n
+    dx, dy = xs[e] - 85.0, ys[e] + 3.0
+    u = dx * math.cos(rot) + dy * math.sin(rot)
+    v = -dx * math.sin(rot) + dy * math.cos(rot)
+    w = zs[e] - 1.0
+    r2 = (u / 20) ** 2 + (v / 10) ** 2 + (w / 6) ** 2
+    assert r2.max() <= 1.0 + 1e-12
+    assert abs(np.mean(r2 <= 0.25) - 0.125) < 3 * math.sqrt(0.125 * 0.875 / e.sum())
+    c = which == 0
+    rho2 = (xs[c] ** 2 + ys[c] ** 2) / 30.0 ** 2
+    assert rho2.max() <= 1.0 + 1e-12 and np.abs(zs[c]).max() <= 10.0
+    assert not np.any((np.abs(xs[c]) <= 4) & (np.abs(ys[c] - 20) <= 4) & (np.abs(zs[c]) <= 4))
+    # the box removes 8*4*4*4... of the cylinder's volume pi*30^2*20 from the kept points
+    kept = c.sum() / n
+    expected = 1.0 - 8 * 4.0 ** 3 / (math.pi * 30.0 ** 2 * 20.0)
+    assert abs(kept - expected) < 4 * math.sqrt(expected * (1 - expected) / n) + 3 / math.sqrt(n)
+    # times follow exp(-lambda t) within the step: mean below the midpoint by lambda/12 (Taylor)
+    assert abs(ts.mean() - (0.5 - 1e-4 / 12)) < 4 * math.sqrt(1 / 12 / len(ts))

@@ -360,17 +360,30 @@ def _tac_value(times, values, n, t):
     return values[lo] + w * (values[hi] - values[lo])
 
 
+@njit(cache=True, inline="always")
+def _decay_time(t0_s, dt_s, decay_constant):
+    """A time in [t0, t0 + dt) drawn with density proportional to exp(-lambda t) (inverse CDF)."""
+    u = np.random.random()
+    x = decay_constant * dt_s
+    if x < 1e-12:
+        return t0_s + dt_s * u
+    return t0_s - math.log1p(u * math.expm1(-x)) / decay_constant
+
+
 @njit(cache=True)
-def emit_from_shapes(kinds, params, candidate_means, envelope, tac_times, tac_values, tac_len,
+def emit_from_shapes(kinds, params, means, envelope, tac_times, tac_values, tac_len,
                      decay_constant, t0_s, dt_s, range_mean_mm):
     """Annihilation points of one time step for an analytic phantom.
 
-    For each shape, a Poisson number of candidates with mean
-    ``candidate_means[s]`` is drawn uniformly in the shape's bounding box
-    and time step; a candidate is kept when it is inside the shape, no later
-    shape covers it (replacement), and with probability
-    ``tac(t) * exp(-lambda t) / envelope[s]`` (thinning of an inhomogeneous
-    Poisson process, Lewis & Shedler 1979).
+    For each shape, a Poisson number of candidates with mean ``means[s]`` is
+    drawn uniformly inside the whole shape; a candidate is kept only where
+    no later shape covers it (replacement). Without a time-activity curve the
+    time follows exp(-lambda t) within the step exactly (inverse CDF) and
+    ``means[s]`` is ``C V f integral(exp(-lambda t) dt)``; with a curve the
+    time is uniform and the candidate is kept with probability
+    ``tac(t) exp(-lambda t) / envelope[s]`` (thinning of an inhomogeneous
+    Poisson process, Lewis & Shedler 1979), ``means[s]`` being
+    ``C V f envelope[s] dt``.
 
     Returns x, y, z (mm), t (s), shape index.
     """
@@ -378,7 +391,7 @@ def emit_from_shapes(kinds, params, candidate_means, envelope, tac_times, tac_va
     counts = np.empty(n_shapes, dtype=np.int64)
     total = 0
     for s in range(n_shapes):
-        counts[s] = np.random.poisson(candidate_means[s]) if candidate_means[s] > 0.0 else 0
+        counts[s] = np.random.poisson(means[s]) if means[s] > 0.0 else 0
         total += counts[s]
     xs = np.empty(total)
     ys = np.empty(total)
@@ -388,20 +401,35 @@ def emit_from_shapes(kinds, params, candidate_means, envelope, tac_times, tac_va
     k = 0
     for s in range(n_shapes):
         prm = params[s]
+        kind = kinds[s]
+        has_tac = tac_len[s] > 0
         for _ in range(counts[s]):
-            t = t0_s + dt_s * np.random.random()
-            u = (2.0 * np.random.random() - 1.0) * prm[3]
-            v = (2.0 * np.random.random() - 1.0) * prm[4]
-            w = (2.0 * np.random.random() - 1.0) * prm[5]
-            keep_p = _tac_value(tac_times[s], tac_values[s], tac_len[s], t) * math.exp(-decay_constant * t)
-            if np.random.random() * envelope[s] >= keep_p:
-                continue
-            if kinds[s] == CYLINDER:
-                if (u / prm[3]) ** 2 + (v / prm[4]) ** 2 > 1.0:
+            if has_tac:
+                t = t0_s + dt_s * np.random.random()
+                keep_p = _tac_value(tac_times[s], tac_values[s], tac_len[s], t) * math.exp(-decay_constant * t)
+                if np.random.random() * envelope[s] >= keep_p:
                     continue
-            elif kinds[s] == ELLIPSOID:
-                if (u / prm[3]) ** 2 + (v / prm[4]) ** 2 + (w / prm[5]) ** 2 > 1.0:
-                    continue
+            else:
+                t = _decay_time(t0_s, dt_s, decay_constant)
+            # a uniform point inside the shape, in its own frame
+            if kind == BOX:
+                u = (2.0 * np.random.random() - 1.0) * prm[3]
+                v = (2.0 * np.random.random() - 1.0) * prm[4]
+                w = (2.0 * np.random.random() - 1.0) * prm[5]
+            elif kind == CYLINDER:
+                rho = math.sqrt(np.random.random())
+                phi = 2.0 * math.pi * np.random.random()
+                u = prm[3] * rho * math.cos(phi)
+                v = prm[4] * rho * math.sin(phi)
+                w = (2.0 * np.random.random() - 1.0) * prm[5]
+            else:
+                rho = np.random.random() ** (1.0 / 3.0)
+                cz = 2.0 * np.random.random() - 1.0
+                phi = 2.0 * math.pi * np.random.random()
+                sz = math.sqrt(1.0 - cz * cz)
+                u = prm[3] * rho * sz * math.cos(phi)
+                v = prm[4] * rho * sz * math.sin(phi)
+                w = prm[5] * rho * cz
             x = prm[0] + u * prm[6] - v * prm[7]
             y = prm[1] + u * prm[7] + v * prm[6]
             z = prm[2] + w
@@ -423,14 +451,13 @@ def emit_from_shapes(kinds, params, candidate_means, envelope, tac_times, tac_va
 
 
 @njit(cache=True)
-def emit_from_voxels(cdf, shape, origin, voxel, mean_count, decay_constant, envelope, t0_s, dt_s,
-                     range_mean_mm):
+def emit_from_voxels(cdf, shape, origin, voxel, mean_count, decay_constant, t0_s, dt_s, range_mean_mm):
     """Annihilation points of one time step for a voxel phantom.
 
-    A Poisson number of candidates with mean ``mean_count``; each picks a
-    voxel with probability proportional to its activity (inverse CDF), a
-    uniform point inside it, a uniform time, and is kept with probability
-    ``exp(-lambda t) / envelope``.
+    A Poisson number of annihilations with mean ``mean_count``
+    (``A f integral(exp(-lambda t) dt)``); each picks a voxel with
+    probability proportional to its activity (inverse CDF), a uniform point
+    inside it, and a time following exp(-lambda t) within the step.
     """
     n = np.random.poisson(mean_count) if mean_count > 0.0 else 0
     xs = np.empty(n)
@@ -439,11 +466,8 @@ def emit_from_voxels(cdf, shape, origin, voxel, mean_count, decay_constant, enve
     ts = np.empty(n)
     ny = shape[1]
     nz = shape[2]
-    k = 0
-    for _ in range(n):
-        t = t0_s + dt_s * np.random.random()
-        if np.random.random() * envelope >= math.exp(-decay_constant * t):
-            continue
+    for k in range(n):
+        ts[k] = _decay_time(t0_s, dt_s, decay_constant)
         flat = np.searchsorted(cdf, np.random.random() * cdf[-1], side="right")
         if flat >= cdf.shape[0]:
             flat = cdf.shape[0] - 1
@@ -453,10 +477,8 @@ def emit_from_voxels(cdf, shape, origin, voxel, mean_count, decay_constant, enve
         xs[k] = origin[0] + (ix + np.random.random() - 0.5) * voxel[0]
         ys[k] = origin[1] + (iy + np.random.random() - 0.5) * voxel[1]
         zs[k] = origin[2] + (iz + np.random.random() - 0.5) * voxel[2]
-        ts[k] = t
-        k += 1
-    _positron_range(xs, ys, zs, k, range_mean_mm)
-    return xs[:k], ys[:k], zs[:k], ts[:k], np.zeros(k, dtype=np.int32)
+    _positron_range(xs, ys, zs, n, range_mean_mm)
+    return xs, ys, zs, ts, np.zeros(n, dtype=np.int32)
 
 
 @njit(cache=True)

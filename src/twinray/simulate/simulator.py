@@ -10,12 +10,14 @@ are listed with it, and in DEVELOPERS.md, "Simulator physics"):
 
 * **Decays.** Positron emissions of each shape form an inhomogeneous Poisson
   process of rate ``C * V * f_beta+ * tac(t) * exp(-lambda t)`` with lambda
-  = ln 2 / T_half (:mod:`twinray.isotopes`); it is sampled exactly by
-  thinning (Lewis & Shedler 1979): a Poisson number of candidates uniform in
-  the shape's bounding box and in the chunk, each kept with probability
-  ``tac(t) exp(-lambda t) / envelope`` and only if it is inside the shape and
-  no later shape covers it (replacement of overlapping shapes). Electron
-  capture decays make no photons and are not simulated.
+  = ln 2 / T_half (:mod:`twinray.isotopes`). Per step, a Poisson number of
+  candidates uniform inside the whole shape is drawn; a candidate is kept
+  only if no later shape covers it (replacement of overlapping shapes:
+  thinning of a Poisson process keeps it Poisson). Without a time-activity
+  curve the time is drawn from exp(-lambda t) within the step (inverse CDF);
+  with one, uniformly and kept with probability
+  ``tac(t) exp(-lambda t) / envelope`` (exact thinning, Lewis & Shedler
+  1979). Electron capture decays make no photons and are not simulated.
 * **Positron range** (optional): isotropic displacement by an exponential
   distance with the isotope's mean range in water (JNM 2022 Table 3). Real
   range distributions are cusp-shaped with long tails and depend on the
@@ -313,20 +315,41 @@ def _prepare_voxel_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOp
 
 
 def _chunk_envelopes(src: _Source, lam: float, t0: float, t1: float) -> np.ndarray:
-    """Upper bound of tac(t) * exp(-lambda t) over [t0, t1] for every shape."""
-    out = np.empty(len(src.kinds))
+    """Upper bound of tac(t) * exp(-lambda t) over [t0, t1] for every shape with a curve (1 without)."""
+    out = np.ones(len(src.kinds))
     for i in range(len(src.kinds)):
         k = src.tac_len[i]
         if k == 0:
-            peak = 1.0
-        else:
-            times = src.tac_times[i, :k]
-            values = src.tac_values[i, :k]
-            inner = values[(times > t0) & (times < t1)]
-            ends = np.interp([t0, t1], times, values)
-            peak = float(max(ends.max(), inner.max() if inner.size else 0.0))
+            continue
+        times = src.tac_times[i, :k]
+        values = src.tac_values[i, :k]
+        inner = values[(times > t0) & (times < t1)]
+        ends = np.interp([t0, t1], times, values)
+        peak = float(max(ends.max(), inner.max() if inner.size else 0.0))
         out[i] = peak * math.exp(-lam * t0)
     return out
+
+
+def _decay_integral_s(lam: float, t0: float, t1: float) -> float:
+    """integral of exp(-lambda t) dt from t0 to t1, s."""
+    return math.exp(-lam * t0) * -math.expm1(-lam * (t1 - t0)) / lam
+
+
+def emission_means(src: _Source, lam: float, positron_fraction: float, t0: float, t1: float) -> tuple:
+    """Expected emission candidates of every shape in [t0, t1], and the thinning envelopes."""
+    envelope = _chunk_envelopes(src, lam, t0, t1)
+    volume_ml = np.array([_shape_volume_ml(src.kinds[i], src.params[i]) for i in range(len(src.kinds))])
+    time_factor = np.where(src.tac_len > 0, envelope * (t1 - t0), _decay_integral_s(lam, t0, t1))
+    return src.concentrations * volume_ml * positron_fraction * time_factor, envelope
+
+
+def _shape_volume_ml(kind, params) -> float:
+    a, b, c = params[3:6]
+    if kind == K.BOX:
+        return 8.0 * a * b * c / 1000.0
+    if kind == K.CYLINDER:
+        return math.pi * a * b * 2.0 * c / 1000.0
+    return 4.0 / 3.0 * math.pi * a * b * c / 1000.0
 
 
 def _peak_candidate_rate(src: _Source, pf: float) -> float:
@@ -336,8 +359,7 @@ def _peak_candidate_rate(src: _Source, pf: float) -> float:
     for i in range(len(src.kinds)):
         k = src.tac_len[i]
         peak = 1.0 if k == 0 else float(src.tac_values[i, :k].max())
-        bbox_ml = 8.0 * np.prod(src.params[i, 3:6]) / 1000.0
-        rate += src.concentrations[i] * bbox_ml * pf * peak
+        rate += src.concentrations[i] * _shape_volume_ml(src.kinds[i], src.params[i]) * pf * peak
     return rate
 
 
@@ -458,15 +480,11 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
             tk = time.perf_counter()
             K.seed_rng(chunk_seed)
             if src.voxel_cdf is not None:
-                envelope = math.exp(-lam * t0)
                 xs, ys, zs, ts, _ = K.emit_from_voxels(
-                    src.voxel_cdf, np.array(src.grid.shape if src.mode == 2 else src.activity_image.shape,
-                                            dtype=np.int64),
-                    src.origin, src.voxel, src.voxel_total_bq * pf * envelope * dt, lam, envelope, t0, dt, range_mm)
+                    src.voxel_cdf, np.array(src.activity_image.shape, dtype=np.int64), src.origin, src.voxel,
+                    src.voxel_total_bq * pf * _decay_integral_s(lam, t0, t1), lam, t0, dt, range_mm)
             else:
-                env = _chunk_envelopes(src, lam, t0, t1)
-                bbox_ml = 8.0 * np.prod(src.params[:, 3:6], axis=1) / 1000.0
-                means = src.concentrations * bbox_ml * pf * env * dt
+                means, env = emission_means(src, lam, pf, t0, t1)
                 xs, ys, zs, ts, _ = K.emit_from_shapes(
                     src.kinds, src.params, means, env, src.tac_times, src.tac_values, src.tac_len,
                     lam, t0, dt, range_mm)
