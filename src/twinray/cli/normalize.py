@@ -26,7 +26,7 @@ _DEFAULT_BATCH = 1 << 20
               help="Radius of that source, mm (flood: half-width of the swept region).")
 @click.option("--source-mu-per-cm", type=click.FloatRange(min=0), default=0.0, show_default=True,
               help="Attenuation of a cylinder source, 1/cm at 511 keV (water 0.096).")
-@click.option("--iterations", type=click.IntRange(min=1), default=30, show_default=True,
+@click.option("--iterations", type=click.IntRange(min=1), default=10, show_default=True,
               help="Alternations of the fan-sum and geometric-factor updates.")
 @click.option("--batch-size", type=click.IntRange(min=1), default=_DEFAULT_BATCH, show_default=True,
               help="Events decoded per batch; memory use grows with it, not with the scan length.")

@@ -279,7 +279,7 @@ class NormalizationFit:
 
 
 def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: NormalizationSource,
-                      iterations: int = 30) -> NormalizationFit:
+                      iterations: int = 10) -> NormalizationFit:
     """Maximum-likelihood crystal efficiencies and geometric factors from fan sums.
 
     Parameters
@@ -405,7 +405,7 @@ class NormalizationResult:
 
 
 def make_normalization(events, output, *, scanner=None, rebin: str = "none", source: NormalizationSource | None = None,
-                       iterations: int = 30, batch_size: int = 1 << 20, progress=None) -> NormalizationResult:
+                       iterations: int = 10, batch_size: int = 1 << 20, progress=None) -> NormalizationResult:
     """Normalization file (data contract section 3) from a normalization scan.
 
     Parameters
