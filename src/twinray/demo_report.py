@@ -22,6 +22,14 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
     """Write ``out/report.html`` for a finished demo run; returns its path."""
     rep = Report("twinray demonstration: an invented bench-top study",
                  f"size '{size}'; data: {origin}")
+    truth_image = data / (manifest["study"]["events"].removesuffix(".parquet") + "_truth_activity.nii.gz")
+    regions = [(r["name"], r["sphere"]) for r in manifest.get("study_roi", [])]
+    images = {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"}
+    recovery = sections.recovery_rows(images, truth_image, regions) if truth_image.is_file() and regions else []
+    calibration = _read_json(out / "calibration.json")
+
+    rep.heading("At a glance")
+    rep.key_values(_glance(steps, recovery, calibration), caption="The run in a few numbers")
     rep.heading("What was run")
     rep.paragraph(manifest.get("description", "A simulated study made by twinray's own simulator."))
     rep.paragraph("Every step below is an ordinary twinray command; the same command lines typed in a shell "
@@ -39,13 +47,16 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
     sections.add_events_sections(rep, study)
     if (out / "norm.h5").is_file():
         sections.add_normalization_sections(rep, out / "norm.h5")
+    if calibration:
+        rep.heading("Calibration")
+        rep.key_values({k.replace("_", " "): v for k, v in calibration.items()
+                        if isinstance(v, (int, float, str, bool)) and k != "source_image"},
+                       caption="From the scan of a uniform cylinder of known concentration (calibration.json)")
     sections.add_sinogram_sections(rep, out / "sinogram.h5")
     sections.add_image_sections(rep, out / "osem.nii.gz", label="OSEM image")
-    sections.add_comparison_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"})
-    truth = data / (manifest["study"]["events"].removesuffix(".parquet") + "_truth_activity.nii.gz")
-    if truth.is_file() and manifest.get("study_roi"):
-        sections.add_recovery_sections(rep, {"FBP": out / "fbp.nii.gz", "OSEM": out / "osem.nii.gz"}, truth,
-                                       [(r["name"], r["sphere"]) for r in manifest["study_roi"]])
+    sections.add_comparison_sections(rep, images)
+    if recovery:
+        sections.add_recovery_sections(rep, images, truth_image, regions, rows=recovery)
     dynamic = data / manifest["dynamic"]["events"]
     sections.add_events_sections(rep, dynamic)
     tac = out / "tac.csv"
@@ -65,6 +76,34 @@ def build_demo_report(manifest: dict, data: Path, origin: str, out: Path, steps,
                                        "data origin": origin},
                               inputs=inputs))
     return rep.write(out / "report.html")
+
+
+def _read_json(path: Path) -> dict:
+    import json
+
+    try:
+        return json.loads(path.read_text())
+    except (OSError, ValueError):
+        return {}
+
+
+def _glance(steps, recovery, calibration) -> dict:
+    """A few headline numbers: events, counts binned, calibration, recovery, time."""
+    facts = {}
+    sino = _step(steps, "sinogram")
+    acc = sino.result.get("accounting", {}) if sino else {}
+    if acc:
+        facts["static study: events read"] = acc.get("read")
+        facts["static study: prompts binned in the frame"] = acc.get("prompts_binned")
+    if calibration.get("bq_per_ml_per_unit") is not None:
+        facts["calibration factor (Bq/mL per counts/s/mL)"] = calibration["bq_per_ml_per_unit"]
+    for name, true_mean, _, measured in recovery:
+        for label, (mean, ratio) in measured.items():
+            if ratio is not None:
+                facts[f"{label} / true, {name}"] = round(ratio, 3)
+    facts["steps"] = len(steps)
+    facts["wall time of the steps (s)"] = round(sum(s.seconds for s in steps), 1)
+    return facts
 
 
 def warning_rows(steps) -> list:

@@ -569,7 +569,7 @@ def add_resample_sections(report: Report, out_dir) -> None:
         except json.JSONDecodeError:
             raise TwinrayInputError(f"{summary_path} is not valid JSON") from None
     mode = summary.get("mode", "")
-    report.heading(f"Noise study: {out_dir.name}" + (f" ({mode})" if mode else ""))
+    report.heading(f"Noise study: {out_dir.name}" + (f" ({mode})" if mode and mode != out_dir.name else ""))
     facts = {label: summary[key] for key, label in _SUMMARY_FACTS.items() if key in summary}
     if facts:
         report.key_values(facts, caption="Resampling")
@@ -660,9 +660,13 @@ def recovery_rows(images: dict, truth_path, regions) -> list:
     return rows
 
 
-def add_recovery_sections(report: Report, images: dict, truth_path, regions, units: str = "Bq/mL") -> None:
-    """A table of regional means against the truth, with their ratios (recovery)."""
-    rows = recovery_rows(images, truth_path, regions)
+def add_recovery_sections(report: Report, images: dict, truth_path, regions, units: str = "Bq/mL",
+                          rows=None) -> None:
+    """A table of regional means against the truth, with their ratios (recovery).
+
+    ``rows`` may pass the result of :func:`recovery_rows` when already computed.
+    """
+    rows = recovery_rows(images, truth_path, regions) if rows is None else rows
     labels = list(images)
     report.heading("Recovery against the truth")
     header = ["region", f"true mean ({units})", "image voxels"]
