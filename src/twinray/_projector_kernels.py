@@ -190,3 +190,11 @@ def sum_buffers_to_zyx(buffers, out):
                 for c in range(n_chunks):
                     acc += buffers[c, base + k]
                 out[k, j, i] = acc
+
+
+# Serial twins for small problems: a parallel region costs a thread wake-up
+# (and, on a busy machine, can wait for a descheduled thread), which is more
+# than the whole job when the job is small.
+forward_kernel_serial = njit(cache=True)(forward_kernel.py_func)
+back_kernel_serial = njit(cache=True)(back_kernel.py_func)
+sum_buffers_to_zyx_serial = njit(cache=True)(sum_buffers_to_zyx.py_func)

@@ -198,6 +198,15 @@ def _kernel_args(geom: ProjectionGeometry):
             float(g.x_mm()[0]), float(g.y_mm()[0]), float(g.voxel_mm), float(g.voxel_mm))
 
 
+#: Below this many interpolation steps (planes x LORs x image width) the serial kernels are used.
+SERIAL_BELOW_STEPS = 4_000_000
+
+
+def _work(geom: ProjectionGeometry, n_views: int) -> int:
+    g = geom.grid
+    return geom.sinogram_shape[0] * n_views * geom.sinogram_shape[2] * max(g.nx, g.ny)
+
+
 def forward_project(image, geom: ProjectionGeometry, views=None, out=None) -> np.ndarray:
     """Line integrals of an image along the LORs of a sinogram (Joseph 1982).
 
@@ -236,8 +245,11 @@ def forward_project(image, geom: ProjectionGeometry, views=None, out=None) -> np
     padded = np.zeros((image.shape[1] + 2, image.shape[2] + 2, image.shape[0] + 2), dtype=image.dtype)
     padded[1:-1, 1:-1, 1:-1] = image.transpose(1, 2, 0)
     nz, ny, nx = image.shape
-    n_chunks = max(1, min(4 * numba.get_num_threads(), shape[1] * shape[2]))
-    _k.forward_kernel(padded.ravel(), ny, nx, nz, *_kernel_args(geom), v, n_chunks, out)
+    if _work(geom, len(v)) < SERIAL_BELOW_STEPS:
+        _k.forward_kernel_serial(padded.ravel(), ny, nx, nz, *_kernel_args(geom), v, 1, out)
+    else:
+        n_chunks = max(1, min(4 * numba.get_num_threads(), shape[1] * shape[2]))
+        _k.forward_kernel(padded.ravel(), ny, nx, nz, *_kernel_args(geom), v, n_chunks, out)
     return out
 
 
@@ -271,10 +283,15 @@ def back_project(sinogram, geom: ProjectionGeometry, views=None, dtype=None) -> 
     shape = (geom.sinogram_shape[0], len(v), geom.sinogram_shape[2])
     if sinogram.shape != shape:
         raise TwinrayInputError(f"sinogram has shape {sinogram.shape}, expected {shape}")
-    n_chunks = max(1, min(numba.get_num_threads(), shape[1] * shape[2]))
+    serial = _work(geom, len(v)) < SERIAL_BELOW_STEPS
+    n_chunks = 1 if serial else max(1, min(numba.get_num_threads(), shape[1] * shape[2]))
     nz, ny, nx = geom.grid.shape
     buffers = np.zeros((n_chunks, (ny + 2) * (nx + 2) * (nz + 2)), dtype=np.float64)
-    _k.back_kernel(sinogram, ny, nx, nz, *_kernel_args(geom), v, buffers)
     out = np.empty(geom.grid.shape, dtype=np.dtype(dtype) if dtype is not None else sinogram.dtype)
-    _k.sum_buffers_to_zyx(buffers, out)
+    if serial:
+        _k.back_kernel_serial(sinogram, ny, nx, nz, *_kernel_args(geom), v, buffers)
+        _k.sum_buffers_to_zyx_serial(buffers, out)
+    else:
+        _k.back_kernel(sinogram, ny, nx, nz, *_kernel_args(geom), v, buffers)
+        _k.sum_buffers_to_zyx(buffers, out)
     return out
