@@ -199,7 +199,7 @@ def _kernel_args(geom: ProjectionGeometry):
 
 
 #: Below this many interpolation steps (planes x LORs x image width) the serial kernels are used.
-SERIAL_BELOW_STEPS = 4_000_000
+SERIAL_BELOW_STEPS = 1_000_000
 
 
 def _work(geom: ProjectionGeometry, n_views: int) -> int:
