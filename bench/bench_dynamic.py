@@ -121,6 +121,15 @@ def _recon_tasks(n_frames):
                    "correction_inputs": prepare_corrections(geometry, options)}
 
 
+def _timed_frame_image(task, **shared):
+    """frame_image plus the wall and CPU seconds of the task in its worker."""
+    from twinray.dynamic import frame_image
+
+    wall, cpu = time.perf_counter(), time.process_time()
+    result = frame_image(task, **shared)
+    return result, time.perf_counter() - wall, time.process_time() - cpu
+
+
 def bench_parallel(n_frames, repeats, iterations=3, subsets=8):
     from twinray.dynamic import frame_image
     from twinray.parallel import dask_client, map_tasks
@@ -132,10 +141,12 @@ def bench_parallel(n_frames, repeats, iterations=3, subsets=8):
     images = {}
     for workers in (1, 2):
         with dask_client(workers=workers) as client:
-            map_tasks(frame_image, tasks[:workers], shared, client=client)   # warm-up: kernels in every worker
-            t, res = _median_time(lambda: map_tasks(frame_image, tasks, shared, client=client), repeats)
+            map_tasks(frame_image, tasks[:2 * workers], shared, client=client)   # warm-up: kernels in every worker
+            t, res = _median_time(lambda: map_tasks(_timed_frame_image, tasks, shared, client=client), repeats)
             out[f"workers_{workers}_s"] = t
-            images[workers] = [r["image"] for r in res]
+            out[f"workers_{workers}_task_wall_s_mean"] = float(np.mean([r[1] for r in res]))
+            out[f"workers_{workers}_task_cpu_s_mean"] = float(np.mean([r[2] for r in res]))
+            images[workers] = [r[0]["image"] for r in res]
     out["speedup_2_workers"] = out["workers_1_s"] / out["workers_2_s"]
     out["identical_1_vs_2"] = all(a.tobytes() == b.tobytes() for a, b in zip(images[1], images[2]))
     return out
