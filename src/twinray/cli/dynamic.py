@@ -154,9 +154,11 @@ def dynamic_command(events, output_dir, schedule, truncate, decay_reference, sca
     ImageDecayCorrected, ImageDecayCorrectionTime, TracerRadionuclide, Units and
     the accounting of every frame.
 
-    Example:
+    Examples:
 
-        twinray dynamic study.parquet -o study_dyn --schedule 6x10,4x30,5x60 --mu mu.nii.gz --workers 2
+    \b
+        twinray dynamic study.parquet -o study_dyn --schedule 6x10,4x30,5x60 --workers 2
+        twinray dynamic study.parquet -o study_dyn --schedule fdg-60min --randoms delayed --mu mu.nii.gz
     """
     from ..dynamic import decay_reference_s, make_dynamic
     from ..events import open_events

@@ -48,6 +48,9 @@ def resample_command(events, output_dir, replicates, mode, fraction_text, seed, 
     their mean image estimates the same concentration as the full scan and
     only the noise changes. Thinning emulates a shorter scan, not a lower
     injected activity (randoms and dead time scale differently with activity).
+    Thinned replicates of one scan vary binomially (n P (1-P) per bin); the
+    summary also gives the noise of an independent scan of P times the
+    duration (scan_*: divided by sqrt(1-P)), which is what the plot shows.
 
     Examples:
 
