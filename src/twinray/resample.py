@@ -41,7 +41,6 @@ import math
 
 import numpy as np
 
-from . import _binning_kernels as binning_kernels
 from . import _resample_kernels as kernels
 from .accounting import Accounting
 from .binning import _Binner, _energy_window, empty_state
