@@ -131,6 +131,7 @@ def test_format_value_never_prints_nan():
     assert format_value(np.int64(42)) == "42"
     assert format_value(0.123456) == "0.1235"
     assert format_value(89534.2) == "89,534"
+    assert format_value(6000.0) == "6,000" and format_value(16000.0) == "16,000" and format_value(999.0) == "999"
     assert format_value(-2224.4) == "-2,224"
     assert format_value(3.2e-7) == "3.2e-07"
     assert format_value(True) == "yes"

@@ -66,7 +66,7 @@ def format_value(value) -> str:
         if not math.isfinite(x):
             return "n/a"
         if x == int(x) and abs(x) < 1e15:
-            return f"{int(x):,}" if abs(x) >= 1e4 else f"{x:g}"
+            return f"{int(x):,}" if abs(x) >= 1e3 else f"{x:g}"
         if 1e3 <= abs(x) < 1e12:
             return f"{x:,.0f}"
         return f"{x:.4g}"
