@@ -1,7 +1,8 @@
 """numba kernels of the Joseph projector pair (see ``projectors.py``).
 
 Kernels take contiguous arrays and scalars only. Inside the kernels the
-image is stored ``[y, x, z]`` (z fastest): every plane of a sinogram shares
+image is stored ``[y, x, z]`` (z fastest), zero-padded by one voxel on
+every side and flattened: every plane of a sinogram shares
 the transaxial path of a (view, radial) LOR, so the path (columns or rows
 visited, in-plane interpolation weights) is computed once and then all
 planes are served from contiguous runs of z. A LOR column is given by its
