@@ -508,3 +508,15 @@ def test_report_option_and_write_report(tmp_path):
     res = runner.invoke(cmd, ["--report", str(sino)])
     assert isinstance(res.exception, TwinrayInputError) and "overwrite" in str(res.exception)
     assert "--report REPORT.html" in runner.invoke(cmd, ["--help"]).output
+
+
+def test_slices_mask_greys_out_voxels_outside():
+    affine = np.diag([2.0, 2.0, 2.0, 1.0])
+    vol = np.full((10, 10, 4), 5.0)
+    show = np.zeros(vol.shape, bool)
+    show[2:8, 2:8, :] = True
+    vol[~show] = 1e6  # would dominate the colour scale if not masked
+    fig = F.slices_figure(vol, affine, units="COV", show=show)
+    shown = fig.axes[0].images[0].get_array()
+    assert np.ma.is_masked(shown) and shown.mask.sum() == 100 - 36
+    assert fig.axes[0].images[0].get_clim()[1] < 10.0

@@ -299,7 +299,7 @@ def _slices(volume, centres, steps, ijk):
 
 
 def slices_figure(volume, affine, units: str = "", title: str = "", point=None, cmap: str = ACTIVITY_CMAP,
-                  vrange=None):
+                  vrange=None, show=None):
     """Transaxial, coronal and sagittal slices of a 3-D image, with mm axes.
 
     Parameters
@@ -315,22 +315,35 @@ def slices_figure(volume, affine, units: str = "", title: str = "", point=None, 
     cmap : str
     vrange : (float, float), optional
         Colour limits (default from percentiles of the image).
+    show : ndarray of bool, shape (x, y, z), optional
+        Voxels to colour; the others are drawn light grey (e.g. a noise map
+        outside the object, where std / mean is meaningless).
 
     Returns
     -------
     Figure
     """
+    from matplotlib import colormaps
+
     vol = np.asarray(volume)
     if vol.ndim != 3:
         raise TwinrayInputError(f"slices need a 3-D image, got {vol.ndim} dimensions")
+    if show is not None and np.shape(show) != vol.shape:
+        raise ValueError(f"mask shape {np.shape(show)} differs from the image shape {vol.shape}")
     if point is None:
-        point = pick_point(vol)
+        point = pick_point(vol if show is None else np.where(show, vol, 0.0))
     vol, _ = finite_for_display(vol)
     point = tuple(int(p) for p in point)
     flipped = [affine[a][a] < 0 for a in range(3)]
     point = tuple(vol.shape[a] - 1 - point[a] if flipped[a] else point[a] for a in range(3))
     vol, centres, steps = _oriented(vol, affine)
-    lo, hi = vrange if vrange is not None else display_range(vol)
+    cmap = colormaps[cmap].with_extremes(bad="#d9d9d9")
+    if show is not None:
+        keep, _, _ = _oriented(np.asarray(show, dtype=bool), affine)
+        lo, hi = vrange if vrange is not None else display_range(vol[keep])
+        vol = np.ma.masked_array(vol, mask=~keep)
+    else:
+        lo, hi = vrange if vrange is not None else display_range(vol)
     # Transaxial slice large on the left; coronal above sagittal on the right.
     fig = _figure(10.5, 5.2, right_in=0.3, top_in=0.45, wspace=0.25, hspace=0.5)
     grid = fig.add_gridspec(2, 2, width_ratios=[1.0, 1.0])

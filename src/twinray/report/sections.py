@@ -583,15 +583,23 @@ def add_resample_sections(report: Report, out_dir) -> None:
         point = figures.pick_point(data)
         report.figure(figures.slices_figure(data, affine, units=str(side.get("Units", "")), point=point),
                       caption=f"Mean of the replicate images{level_text}.")
+        finite = data[np.isfinite(data)]
+        threshold = 0.05 * float(np.percentile(finite, 99)) if finite.size else 0.0
+        inside = np.isfinite(data) & (data > threshold)
         for path, what in ((cov_path, "coefficient of variation (std / mean)"),
                            (std_path, f"standard deviation ({side.get('Units', 'image units')})")):
             if path.is_file():
                 noise, aff2, _ = read_image_with_sidecar(path)
                 noise = _volume_of(noise, pick)
+                is_cov = path == cov_path
+                show = inside if is_cov and inside.shape == noise.shape and inside.any() else None
+                shown = noise[show] if show is not None else noise
                 report.figure(figures.slices_figure(noise, aff2, units=what, point=point, cmap=figures.NOISE_CMAP,
-                                                    vrange=figures.display_range(noise, 0.0, 99.0)),
-                              caption=(f"Noise map{level_text}: voxel-wise {what} over the replicates (ddof = 1); "
-                                       "colour scale clipped at the 99th percentile."))
+                                                    vrange=figures.display_range(shown, 0.0, 99.0), show=show),
+                              caption=(f"Noise map{level_text}: voxel-wise {what} over the replicates (ddof = 1)"
+                                       + ("; grey where the mean image is below 5 % of its 99th percentile "
+                                          "(outside the object std / mean means little)" if show is not None
+                                          else "") + "; colour scale clipped at the 99th percentile."))
                 break
     rows = _level_rows(summary)
     if rows:
