@@ -54,6 +54,17 @@ def _figure(width_in: float, height_in: float, *, left_in: float = 0.75, right_i
     return fig
 
 
+def _colorbar(fig, mappable, axes, label: str, shrink: float = 0.85):
+    """A colour bar; large values get SI prefixes (120k rather than 120000)."""
+    from matplotlib.ticker import EngFormatter
+
+    bar = fig.colorbar(mappable, ax=axes, label=label, shrink=shrink)
+    lo, hi = mappable.get_clim()
+    if max(abs(lo), abs(hi)) >= 1e4:
+        bar.ax.yaxis.set_major_formatter(EngFormatter(sep=""))
+    return bar
+
+
 def finite_for_display(values) -> tuple:
     """A float64 copy with NaN and infinities replaced by 0, and how many there were."""
     arr = np.array(values, dtype=np.float64, copy=True)
@@ -146,7 +157,7 @@ def _sinogram_panel(fig, ax, data, radial_mm, view_angles_rad, title, label, cma
     ax.set_xlabel("radial position s (mm)")
     ax.set_ylabel("view angle (degrees)")
     ax.set_title(title, loc="left", fontsize=10)
-    fig.colorbar(mesh, ax=ax, label=label, shrink=0.9)
+    _colorbar(fig, mesh, ax, label, shrink=0.9)
 
 
 def sinogram_figure(panels: dict, radial_mm, view_angles_rad, units: dict | None = None):
@@ -357,7 +368,7 @@ def slices_figure(volume, affine, units: str = "", title: str = "", point=None, 
         ax.set_xlabel(xl)
         ax.set_ylabel(yl)
         ax.set_title(f"{name}, {where}", fontsize=9, loc="left")
-    fig.colorbar(im, ax=list(axes), label=units or "image value", shrink=0.85)
+    _colorbar(fig, im, list(axes), units or "image value")
     if title:
         fig.suptitle(title, x=0.01, ha="left", fontsize=10)
     return fig
@@ -416,7 +427,7 @@ def compare_images_figure(images: dict, affine, units: str = "", point=None):
         ax.set_title(label, fontsize=10, loc="left")
         ax.set_xlabel("x (mm)")
         ax.set_ylabel("y (mm)")
-    fig.colorbar(im, ax=list(axes[:n]), label=units or "image value", shrink=0.85)
+    _colorbar(fig, im, list(axes[:n]), units or "image value")
     prof_ax = axes[n]
     for c, (label, v) in enumerate(oriented.items()):
         prof_ax.plot(centres[0], v[:, j, k], label=label, color=LINE_COLOURS[c % len(LINE_COLOURS)],
@@ -484,7 +495,7 @@ def frames_figure(volume4d, affine, frame_mid_s, units: str = "", max_frames: in
         ax.set_ylabel("y (mm)", fontsize=7)
     for ax in axes[len(chosen):]:
         ax.set_visible(False)
-    fig.colorbar(im, ax=list(axes), label=units or "image value", shrink=0.85)
+    _colorbar(fig, im, list(axes), units or "image value")
     fig.suptitle(f"transaxial slice z = {centres[2][kk]:.1f} mm", x=0.01, ha="left", fontsize=10)
     return fig
 
