@@ -380,6 +380,11 @@ def test_report_for_resample_finds_noise_against_counts(tmp_path):
     series = noise_series_from_summary(summary)
     np.testing.assert_allclose(series["background, voxel COV"][0], [1e5, 3e5, 1e6])
     np.testing.assert_allclose(series["background, regional-mean COV"][1], 0.01 / np.sqrt(fractions))
+    levels[0]["regions"]["background"]["scan_voxel_cov"] = 0.3
+    levels[1]["regions"]["background"]["scan_voxel_cov"] = 0.2
+    scan = noise_series_from_summary(summary)
+    np.testing.assert_allclose(scan["background, voxel COV (scan-equivalent)"][1], [0.3, 0.2])
+    assert "background, voxel COV" not in scan  # one level left without scan_*: too few for a series
     out = report_for_resample(tmp_path, tmp_path / "noise.html")
     parser, images = _check_report(out, ["Noise study"])
     assert len(images) == 3  # mean, noise map, noise against counts

@@ -509,8 +509,14 @@ def noise_series_from_summary(summary) -> dict:
             if not _numeric(counts) or not isinstance(regions, dict):
                 continue
             for region, stats in regions.items():
+                if not isinstance(stats, dict):
+                    continue
                 for key, label in (("voxel_cov", "voxel COV"), ("roi_mean_cov", "regional-mean COV")):
-                    if isinstance(stats, dict) and _numeric(stats.get(key)):
+                    # Thinning: scan_* is the noise of an independent scan of P times the
+                    # duration (the binomial spread of thinned copies divided by sqrt(1 - P)).
+                    if _numeric(stats.get(f"scan_{key}")):
+                        key, label = f"scan_{key}", f"{label} (scan-equivalent)"
+                    if _numeric(stats.get(key)):
                         c, n = found.setdefault(f"{region}, {label}", ([], []))
                         c.append(float(counts))
                         n.append(float(stats[key]))
