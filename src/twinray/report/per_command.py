@@ -33,6 +33,17 @@ def _from_click_context(command: str, options):
     return command, options
 
 
+def _subtitle(default: str) -> str:
+    """``twinray <command>`` of the running click command, else ``default``."""
+    try:
+        import click
+
+        ctx = click.get_current_context(silent=True)
+    except ImportError:  # pragma: no cover
+        ctx = None
+    return f"twinray {ctx.info_name}" if ctx is not None and ctx.info_name else default
+
+
 def _finish(report: Report, report_path, command: str, options, inputs) -> Path:
     command, options = _from_click_context(command, options)
     report.provenance(provenance(command=command, options=options, inputs=[p for p in inputs if p is not None]))
@@ -62,7 +73,7 @@ def report_for_events(events_path, report_path, *, scanner=None, command: str = 
     -------
     Path
     """
-    rep = Report(f"Events {Path(events_path).name}", "twinray inspect")
+    rep = Report(f"Events {Path(events_path).name}", _subtitle("twinray inspect"))
     sections.add_events_sections(rep, events_path, scanner=scanner)
     return _finish(rep, report_path, command, options, list(inputs) or [events_path])
 
@@ -86,7 +97,7 @@ def report_for_sinogram(sinogram_path, report_path, *, events_path=None, scanner
     inputs : iterable of path-like
         Input files (events, norm, mu-map) to checksum.
     """
-    rep = Report(f"Sinogram {Path(sinogram_path).name}", "twinray sinogram")
+    rep = Report(f"Sinogram {Path(sinogram_path).name}", _subtitle("twinray sinogram"))
     if events_path is not None:
         sections.add_events_sections(rep, events_path, scanner=scanner)
     sections.add_sinogram_sections(rep, sinogram_path, plane=plane)
@@ -95,7 +106,7 @@ def report_for_sinogram(sinogram_path, report_path, *, events_path=None, scanner
 
 def report_for_normalization(norm_path, report_path, *, command: str = "", options=None, inputs=()) -> Path:
     """Report of ``twinray normalize``: crystal efficiencies and normalization factors."""
-    rep = Report(f"Normalization {Path(norm_path).name}", "twinray normalize")
+    rep = Report(f"Normalization {Path(norm_path).name}", _subtitle("twinray normalize"))
     sections.add_normalization_sections(rep, norm_path)
     return _finish(rep, report_path, command, options, inputs)
 
@@ -114,7 +125,7 @@ def report_for_image(image_path, report_path, *, compare_with: dict | None = Non
     command, options, inputs :
         For the provenance.
     """
-    rep = Report(f"Image {Path(image_path).name}", "twinray reconstruct")
+    rep = Report(f"Image {Path(image_path).name}", _subtitle("twinray reconstruct"))
     sections.add_image_sections(rep, image_path)
     if compare_with:
         sections.add_comparison_sections(rep, {Path(image_path).name: image_path, **compare_with},
@@ -125,7 +136,7 @@ def report_for_image(image_path, report_path, *, compare_with: dict | None = Non
 def report_for_dynamic(output_dir, report_path, *, tac_path=None, command: str = "", options=None,
                        inputs=()) -> Path:
     """Report of ``twinray dynamic``: frames, decay factors and (if given) TACs."""
-    rep = Report(f"Dynamic study {Path(output_dir).name}", "twinray dynamic")
+    rep = Report(f"Dynamic study {Path(output_dir).name}", _subtitle("twinray dynamic"))
     sections.add_dynamic_sections(rep, output_dir, tac_path=tac_path)
     return _finish(rep, report_path, command, options, inputs)
 
@@ -133,13 +144,13 @@ def report_for_dynamic(output_dir, report_path, *, tac_path=None, command: str =
 def report_for_tac(tac_path, report_path, *, units: str = "", command: str = "", options=None,
                    inputs=()) -> Path:
     """Report of ``twinray tac``: the curves and their table."""
-    rep = Report(f"Time-activity curves {Path(tac_path).name}", "twinray tac")
+    rep = Report(f"Time-activity curves {Path(tac_path).name}", _subtitle("twinray tac"))
     sections.add_tac_sections(rep, tac_path, units=units)
     return _finish(rep, report_path, command, options, inputs)
 
 
 def report_for_resample(output_dir, report_path, *, command: str = "", options=None, inputs=()) -> Path:
     """Report of ``twinray resample``: mean image, noise map, noise against counts."""
-    rep = Report(f"Noise study {Path(output_dir).name}", "twinray resample")
+    rep = Report(f"Noise study {Path(output_dir).name}", _subtitle("twinray resample"))
     sections.add_resample_sections(rep, output_dir)
     return _finish(rep, report_path, command, options, inputs)
