@@ -133,10 +133,12 @@ def report_for_image(image_path, report_path, *, compare_with: dict | None = Non
     return _finish(rep, report_path, command, options, inputs)
 
 
-def report_for_dynamic(output_dir, report_path, *, tac_path=None, command: str = "", options=None,
-                       inputs=()) -> Path:
-    """Report of ``twinray dynamic``: frames, decay factors and (if given) TACs."""
+def report_for_dynamic(output_dir, report_path, *, events_path=None, scanner=None, tac_path=None,
+                       command: str = "", options=None, inputs=()) -> Path:
+    """Report of ``twinray dynamic``: count rate (when the events are given), frames, decay factors, TACs."""
     rep = Report(f"Dynamic study {Path(output_dir).name}", _subtitle("twinray dynamic"))
+    if events_path is not None:
+        sections.add_events_sections(rep, events_path, scanner=scanner)
     sections.add_dynamic_sections(rep, output_dir, tac_path=tac_path)
     return _finish(rep, report_path, command, options, inputs)
 
