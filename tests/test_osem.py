@@ -177,6 +177,9 @@ def test_decay_factor_calibration_and_bad_input():
     np.testing.assert_allclose(scaled.image, base.image * 4.5, rtol=1e-5)
     assert scaled.sidecar["ImageDecayCorrected"] is True and scaled.units == "Bq/mL"
     assert base.sidecar["ImageDecayCorrected"] is False
+    empty = reconstruct_arrays({"prompts": np.zeros(geo.shape)}, geo, 0.0, 5.0,
+                               ReconOptions(method="osem", iterations=2, subsets=2))
+    assert np.all(empty.image == 0) and any("no prompts" in w for w in empty.warnings)
     with pytest.raises(TwinrayInputError, match="corrected"):
         reconstruct_arrays({"prompts": chords, "norm": np.ones(geo.shape)}, geo, 0.0, 5.0, ReconOptions(method="fbp"))
     with pytest.raises(TwinrayInputError, match="duration"):

@@ -277,6 +277,8 @@ def reconstruct_arrays(arrays: dict, geometry: SinogramGeometry, frame_start_s: 
             additive = np.maximum(additive, 0.0)
         if np.any(prompts < 0):
             raise TwinrayInputError(f"{where}: prompts must be non-negative counts")
+        if not prompts.any():
+            warnings.append(f"{where} has no prompts in this frame; the image is zero")
         if options.mode == "2d":
             prompts, _ = ssrb_sum(prompts, geometry.plane_z_mm)
             mult, _ = ssrb_sum(mult, geometry.plane_z_mm)
