@@ -32,7 +32,7 @@ MAX_FRAMES = 10000
 _RUN = re.compile(r"^\s*(?:(\d+)\s*[xX*]\s*)?([0-9]*\.?[0-9]+(?:[eE][-+]?\d+)?)\s*$")
 
 #: Folder of the schedules shipped with the source tree.
-SHIPPED_SCHEDULES = Path(__file__).resolve().parents[2] / "configs" / "schedules"
+SHIPPED_SCHEDULES = Path(__file__).resolve().parent / "configs" / "schedules"
 
 
 @dataclasses.dataclass(frozen=True)

@@ -352,7 +352,7 @@ def _find_scanner(value, phantom_path: Path, where) -> Path:
     if not isinstance(value, str):
         raise TwinrayInputError(f"{where} must be a file name, got {value!r}")
     here = phantom_path.parent
-    candidates = [here / value, here.parent / value, Path(__file__).resolve().parents[3] / "configs" / value]
+    candidates = [here / value, here.parent / value, Path(__file__).resolve().parents[1] / "configs" / value]
     for candidate in candidates:
         if candidate.is_file():
             return candidate
