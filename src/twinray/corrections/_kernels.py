@@ -163,7 +163,8 @@ def fan_sums_batch(crystal_a, crystal_b, delayed, use_delayed, energy_a, energy_
 def acf_sinogram(mu_per_cm, origin_mm, voxel_mm, transaxial_ends, axial_ends, out):
     """``exp(line integral of mu)`` along the nominal LOR of every (plane, view, radial) bin.
 
-    ``mu_per_cm`` in 1/cm (lengths are mm, hence the 1/10);
+    ``mu_per_cm`` in 1/cm (lengths are mm, hence the 1/10), indexed
+    ``[iz, iy, ix]`` with ``origin_mm`` and ``voxel_mm`` in (z, y, x) order;
     ``transaxial_ends`` is (views, radial, 2, 2) (end 1 / end 2, x / y) and
     ``axial_ends`` (planes, 2) (z of end 1 / end 2); ``out`` (float32) is
     (planes, views, radial).
@@ -178,8 +179,8 @@ def acf_sinogram(mu_per_cm, origin_mm, voxel_mm, transaxial_ends, axial_ends, ou
         z2 = axial_ends[p, 1]
         for r in range(radial):
             integral = siddon_line_integral(mu_per_cm, origin_mm, voxel_mm,
-                                            transaxial_ends[v, r, 0, 0], transaxial_ends[v, r, 0, 1], z1,
-                                            transaxial_ends[v, r, 1, 0], transaxial_ends[v, r, 1, 1], z2)
+                                            z1, transaxial_ends[v, r, 0, 1], transaxial_ends[v, r, 0, 0],
+                                            z2, transaxial_ends[v, r, 1, 1], transaxial_ends[v, r, 1, 0])
             out[p, v, r] = np.exp(0.1 * integral)
 
 

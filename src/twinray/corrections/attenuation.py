@@ -120,7 +120,11 @@ def attenuation_factors(mu_per_cm, affine, geometry: SinogramGeometry) -> np.nda
     trans = np.ascontiguousarray(geometry.transaxial_endpoints_mm(), np.float64)
     axial = np.ascontiguousarray(geometry.axial_endpoints_mm(), np.float64)
     acf = np.empty(geometry.shape, np.float32)
-    _kernels.acf_sinogram(grid, origin, voxel, trans, axial, acf)
+    # LORs run mostly transaxially: store the map as [iz, iy, ix] so the frequent x and y steps
+    # of the walk touch nearby memory (the kernel gets the axes in that order; Siddon's method
+    # does not care which axis is which).
+    grid_zyx = np.ascontiguousarray(grid.transpose(2, 1, 0))
+    _kernels.acf_sinogram(grid_zyx, origin[::-1].copy(), voxel[::-1].copy(), trans, axial, acf)
     return acf
 
 

@@ -50,7 +50,8 @@ from ..accounting import FIELDS, Accounting
 from ..errors import TwinrayInputError
 from ..geometry import SinogramGeometry
 from . import _kernels
-from .pairs import kernel_arguments, pair_product_sinogram, pair_ring_difference_mm, ring_difference_count
+from .pairs import (kernel_arguments, pair_product_sinogram, pair_ring_difference_mm, pairs_per_bin,
+                    ring_difference_count)
 
 SOURCE_SHAPES = ("flood", "cylinder", "rotating-line")
 
@@ -344,9 +345,8 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
     if not covered[n_pairs_table > 0].all():
         notes.append(f"the source (radius {source.radius_mm:g} mm) does not cover every radial bin; the "
                      "geometric factors outside it are copied from the nearest covered radial bin")
-    efficiency = pair_product_sinogram(geometry, eps, g)
-    norm = np.where(efficiency > 0, 1.0 / np.where(efficiency > 0, efficiency, 1.0), 0.0)
-    return NormalizationFit(crystal_efficiency=eps, geometric_factor=g, norm=norm.astype(np.float32),
+    norm = norm_from_factors(geometry, eps, g)
+    return NormalizationFit(crystal_efficiency=eps, geometric_factor=g, norm=norm,
                             covered=covered, iterations=int(iterations), notes=tuple(notes))
 
 
@@ -376,8 +376,15 @@ def norm_from_factors(geometry: SinogramGeometry, crystal_efficiency=None, geome
     axial-compression (span) and view-mashing part of the normalization,
     used when no normalization file is given.
     """
-    eff = pair_product_sinogram(geometry, crystal_efficiency, geometric_factor)
-    return np.where(eff > 0, 1.0 / np.where(eff > 0, eff, 1.0), 0.0).astype(np.float32)
+    # In place, in float32: a whole-body sinogram has 6e7 bins.
+    if crystal_efficiency is None and geometric_factor is None:
+        norm = np.array(pairs_per_bin(geometry), dtype=np.float32)  # cached: the same for every frame
+    else:
+        norm = pair_product_sinogram(geometry, crystal_efficiency, geometric_factor, dtype=np.float32)
+    positive = norm > 0
+    np.divide(1.0, norm, out=norm, where=positive)
+    norm[~positive] = 0.0
+    return norm
 
 
 # ---- normalization files ---------------------------------------------------------------------------------
