@@ -21,19 +21,21 @@ from twinray.errors import TwinrayInputError
 
 from test_report import assert_clean, decode_images, parse_report
 
-REPO = Path(__file__).resolve().parents[1]
 
 
-def test_packaged_phantoms_are_copies_of_the_configs():
-    """The phantoms inside the package regenerate the same study as configs/ (kept byte-identical)."""
+def test_manifest_names_the_phantoms_and_seeds_of_the_shipped_events():
+    """Regeneration uses the phantom file and seed recorded in each shipped event file's truth JSON."""
     manifest = demo.load_manifest()
-    pairs = [(demo.PACKAGE_DEMO_DIR / manifest[k]["phantom"], REPO / "configs" / manifest[k]["phantom"])
-             for k in demo.STUDY_KEYS]
-    pairs.append((demo.PACKAGE_DEMO_DIR / "scanners" / "benchtop.toml", REPO / "configs" / "scanners" / "benchtop.toml"))
-    if not (REPO / "configs").is_dir():
-        pytest.skip("no source checkout")
-    for packaged, original in pairs:
-        assert packaged.read_bytes() == original.read_bytes(), packaged
+    data = demo.source_tree_data_dir()
+    for key in demo.STUDY_KEYS:
+        entry = manifest[key]
+        assert (demo.PACKAGE_CONFIGS / entry["phantom"]).is_file(), entry
+        truth_json = data / entry["events"].replace(".parquet", "_truth.json")
+        if not truth_json.is_file():
+            pytest.skip("no shipped demo data (installed package)")
+        truth = json.loads(truth_json.read_text())
+        assert Path(truth["phantom_file"]).name == Path(entry["phantom"]).name
+        assert truth["seed"] == entry["seed"]
 
 
 def test_regions_of_interest_lie_inside_their_compartments():
@@ -46,7 +48,7 @@ def test_regions_of_interest_lie_inside_their_compartments():
     u = np.stack(np.meshgrid(g, g, g, indexing="ij"), axis=-1).reshape(-1, 3)
     u = u[np.linalg.norm(u, axis=1) <= 1.0]
     for key, rois in (("dynamic", manifest["roi"]), ("study", manifest["study_roi"])):
-        phantom = load_phantom(demo.PACKAGE_DEMO_DIR / manifest[key]["phantom"])
+        phantom = load_phantom(demo.PACKAGE_CONFIGS / manifest[key]["phantom"])
         names = [s.name for s in phantom.shapes]
         for roi in rois:
             x, y, z, r = roi["sphere"]

@@ -18,7 +18,7 @@ Where the data come from (first that applies):
 2. ``simulated_events/`` of a source checkout (next to ``src/``);
 3. otherwise the study is regenerated with the simulator into
    ``OUTPUT/demo-data/`` from the phantom and scanner files shipped inside
-   the package (``twinray/data/demo/``), with the same seeds as the shipped
+   the package (``twinray/configs/``), with the same seeds as the shipped
    files, so an installed package needs no source tree.
 
 The manifest ``twinray/data/demo/demo.toml`` names the files, the seeds, the
@@ -41,6 +41,8 @@ from .errors import TwinrayInputError
 
 PACKAGE_DEMO_DIR = Path(__file__).resolve().parent / "data" / "demo"
 MANIFEST = PACKAGE_DEMO_DIR / "demo.toml"
+#: Phantoms and scanners shipped inside the package (``configs/`` of the repository links here).
+PACKAGE_CONFIGS = Path(__file__).resolve().parent / "configs"
 SIZES = ("small", "full")
 
 
@@ -149,7 +151,7 @@ def regenerate_demo_data(manifest: dict, target: Path, on_step=None) -> Path:
         events = target / entry["events"]
         if events.is_file() and (target / _mu_name(entry["events"])).is_file():
             continue
-        phantom = PACKAGE_DEMO_DIR / entry["phantom"]
+        phantom = PACKAGE_CONFIGS / entry["phantom"]
         argv = ["simulate", str(phantom), "-o", str(events), "--seed", str(int(entry["seed"]))]
         if "duration_s" in entry:  # shorter studies, for tests of this path
             argv += ["--duration", str(float(entry["duration_s"]))]
