@@ -15,7 +15,7 @@ efficiencies. In one process it measures
 
 and, in fresh subprocesses, the wall time and peak resident memory of
 ``twinray normalize`` on studies of two sizes (the fan-sum pass streams, so
-memory must not grow with the file).
+memory must not grow with the file; peak = ``VmHWM`` of the child).
 
 Usage::
 
@@ -100,7 +100,9 @@ def normalize_subprocess(events: Path, out: Path) -> dict:
         f"rc = main(['normalize', {str(events)!r}, '-o', {str(out)!r}, '--source-shape', 'cylinder', "
         "'--source-radius-mm', '200', '--source-mu-per-cm', '0.096', '-q'])\n"
         "wall = time.perf_counter() - t\n"
-        "print(rc, wall, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)\n"
+        # VmHWM of the new process image (ru_maxrss would keep the forking parent's peak).
+        "hwm = [l for l in open('/proc/self/status') if l.startswith('VmHWM')][0].split()[1]\n"
+        "print(rc, wall, hwm)\n"
     )
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     rc, wall, rss_kib = res.stdout.split()
@@ -112,6 +114,8 @@ def main(argv=None):
     parser.add_argument("--events", type=int, default=4_000_000)
     parser.add_argument("--big-events", type=int, default=20_000_000)
     parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--only-normalize", action="store_true",
+                        help="Run only the normalize memory measurement.")
     args = parser.parse_args(argv)
 
     from bench_binning import generate
@@ -133,6 +137,10 @@ def main(argv=None):
     mu = water_mu_map(WORK / "wholebody_water_mu.nii.gz")
     norm = norm_file(WORK / "wholebody_norm.h5", geometry)
     out = WORK / "corrections_bench.h5"
+    if args.only_normalize:
+        print(json.dumps({f"{n}": normalize_subprocess(p, WORK / f"norm_{n}.h5")
+                          for n, p in ((args.events, events), (args.big_events, big))}, indent=2))
+        return
     result = {"machine": {"python": platform.python_version(), "platform": platform.platform(),
                           "cpus": os.cpu_count(), "load_before": os.getloadavg()},
               "date_utc": time.strftime("%Y-%m-%d %H:%M", time.gmtime()), "events": args.events,
