@@ -4,9 +4,10 @@ Run from the repository root::
 
     python bench/bench_simulate.py [--seconds 2] [--repeats 3]
 
-For each analytic phantom the simulator kernels (emission + photon
-transport; randoms and the file writer excluded) are timed over a whole
-acquisition, and in the same process a numpy baseline draws the same number
+For each analytic phantom the simulator's step (``simulate_step``: Poisson
+counts, emission, photon transport, randoms and delayed; the sort and the
+file writer excluded) is timed over a whole acquisition, and in the same
+process a numpy baseline draws the same number
 of annihilations as plain uniform points in a box plus isotropic directions
 (5 uniform numbers each), the least any Monte Carlo of this kind must do. The
 ratio simulator / baseline (annihilations per second) is the figure to
@@ -35,9 +36,8 @@ sys.path.insert(0, str(ROOT / "src"))
 
 from twinray.scanner import load_scanner  # noqa: E402
 from twinray.simulate import PhysicsOptions, load_phantom  # noqa: E402
-from twinray.simulate import _kernels as K  # noqa: E402
 from twinray.simulate.simulator import (  # noqa: E402
-    FWHM_TO_SIGMA, NONCOLLINEARITY_SIGMA_RAD, _prepare_source, emission_means,
+    FWHM_TO_SIGMA, NONCOLLINEARITY_SIGMA_RAD, StepSettings, _prepare_source, detection_cone, simulate_step,
 )
 from twinray.isotopes import get_isotope, mean_positron_range_mm  # noqa: E402
 
@@ -54,34 +54,30 @@ activity_bq_per_ml = {conc}
 
 
 def kernel_run(phantom, physics, seconds, seed=1):
-    """Time emission + detection over ``seconds`` of acquisition; returns (annihilations, trues+scatters, s)."""
+    """Time the simulator's steps over ``seconds`` of acquisition; returns
+    (annihilations, trues + scatters, s, detection cone)."""
     scanner = load_scanner(phantom.scanner_path)
     src = _prepare_source(phantom, scanner, physics)
     iso = get_isotope(phantom.isotope)
-    lam, pf = iso.decay_constant_per_s, iso.positron_fraction
     prob = np.full(scanner.n_crystals, 0.9)
     range_mm = mean_positron_range_mm(iso.name) if physics.positron_range else 0.0
     nc = NONCOLLINEARITY_SIGMA_RAD if physics.non_collinearity else 0.0
+    settings = StepSettings(lam=iso.decay_constant_per_s, positron_fraction=iso.positron_fraction,
+                            range_mm=range_mm, noncollinearity_sigma_rad=nc,
+                            energy_sigma_kev=physics.energy_resolution_fwhm * 511 * FWHM_TO_SIGMA,
+                            tau_s=0.5 * scanner.coincidence_window_ns * 1e-9,
+                            cone=detection_cone(src, scanner, physics, range_mm, nc))
     step = 0.25
     n_ann = n_coinc = 0
     elapsed = 0.0
     for k in range(int(round(seconds / step))):
         t0 = k * step
-        means, env = emission_means(src, lam, pf, t0, t0 + step)
         start = time.perf_counter()
-        K.seed_rng(seed + k)
-        xs, ys, zs, ts, _ = K.emit_from_shapes(src.kinds, src.params, means, env, src.tac_times, src.tac_values,
-                                               src.tac_len, lam, t0, step, range_mm)
-        out = K.detect_pairs(xs, ys, zs, ts, src.mode, src.kinds, src.params, src.mus, src.grid, src.origin,
-                             src.voxel, scanner.radius_mm, scanner.axial_length_mm / 2, scanner.axial_pitch_mm,
-                             scanner.rings, scanner.crystals_per_ring, scanner.angle_offset_rad,
-                             physics.attenuation, physics.scatter, nc, prob,
-                             physics.energy_resolution_fwhm * 511 * FWHM_TO_SIGMA, physics.lld_kev,
-                             physics.uld_kev, 0.0)
+        parts, _, _, ctr, _ = simulate_step(src, scanner, physics, settings, prob, seed, k, t0, t0 + step)
         elapsed += time.perf_counter() - start
-        n_ann += len(xs)
-        n_coinc += len(out[0])
-    return n_ann, n_coinc, elapsed
+        n_ann += int(ctr[0])
+        n_coinc += len(parts[0][0])
+    return n_ann, n_coinc, elapsed, settings.cone
 
 
 def numpy_baseline(n, seed=0):
@@ -139,18 +135,20 @@ def main():
             ("benchtop_inserts (5 shapes, water), all physics",
              load_phantom(ROOT / "configs" / "phantoms" / "benchtop_inserts.toml"), PhysicsOptions()),
         ]
+        load_before = os.getloadavg()
         kernel_run(cases[0][1], cases[0][2], 0.25)   # compile / load the cache outside the timing
         kernel_run(cases[2][1], cases[2][2], 0.25)
         rows = []
         for label, phantom, physics in cases:
             runs = []
             for r in range(args.repeats):
-                n_ann, n_coinc, sim_s = kernel_run(phantom, physics, args.seconds, seed=100 * r + 1)
+                n_ann, n_coinc, sim_s, cone = kernel_run(phantom, physics, args.seconds, seed=100 * r + 1)
                 base_s = numpy_baseline(n_ann, seed=r)
                 runs.append((n_ann, n_coinc, sim_s, base_s))
             n_ann, n_coinc, sim_s, base_s = sorted(runs, key=lambda x: x[2] / x[3])[len(runs) // 2]
             rows.append({
                 "case": label,
+                "detection_cone": cone,
                 "annihilations": n_ann,
                 "coincidences": n_coinc,
                 "simulator_annihilations_per_s": n_ann / sim_s,
@@ -160,11 +158,13 @@ def main():
             })
     print(f"machine: {platform.machine()} {platform.processor() or ''} {os.cpu_count()} cpu(s), "
           f"Python {platform.python_version()}, numpy {np.__version__}, {time.strftime('%Y-%m-%d %H:%M UTC', time.gmtime())}")
-    print("| case | annihilations | coincidences/s (trues+scatters) | simulator annihilations/s | "
+    print(f"load average before the runs: {load_before}, after: {os.getloadavg()}")
+    print("| case | cone | annihilations | coincidences/s (trues+scatters) | simulator annihilations/s | "
           "numpy baseline annihilations/s | ratio |")
-    print("|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|")
     for row in rows:
-        print(f"| {row['case']} | {row['annihilations']:,} | {row['coincidences_per_s'] / 1e6:.3f} M | "
+        print(f"| {row['case']} | {row['detection_cone']:.3f} | {row['annihilations']:,} | "
+              f"{row['coincidences_per_s'] / 1e6:.3f} M | "
               f"{row['simulator_annihilations_per_s'] / 1e6:.2f} M | "
               f"{row['numpy_baseline_annihilations_per_s'] / 1e6:.2f} M | {row['ratio_simulator_to_numpy']:.2f} |")
     sys.stdout.flush()

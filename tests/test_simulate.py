@@ -14,6 +14,8 @@ from twinray.isotopes import decay_constant_per_s
 from twinray.scanner import load_scanner
 from twinray.simulate import PhysicsOptions, load_phantom, simulate, truth_paths_for
 from twinray.simulate import _kernels as K
+from twinray.simulate._rng import state_from_seed
+from twinray.simulate.simulator import _shape_bound
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCHTOP = ROOT / "configs" / "scanners" / "benchtop.toml"
@@ -87,18 +89,19 @@ def test_attenuation_survival_statistical():
     kinds = np.array([K.CYLINDER], dtype=np.int32)
     params = np.array([[0.0, 0.0, 0.0, 100.0, 100.0, 50.0, 1.0, 0.0]])
     mus = np.array([0.096])
-    K.seed_rng(11)
     n = 20_000
-    survived = _pair_survivals(kinds, params, mus, n)
+    survived = _pair_survivals(state_from_seed(11), kinds, params, mus, n)
     p = 0.1466
     assert abs(survived / n - p) < 3 * math.sqrt(p * (1 - p) / n)
 
 
-def _pair_survivals(kinds, params, mus, n):
+def _pair_survivals(rng, kinds, params, mus, n):
     from numba import njit
 
+    bound = _shape_bound(kinds, params, mus)
+
     @njit
-    def run(kinds, params, mus, n):
+    def run(rng, kinds, params, mus, n, bound):
         scratch_t = np.empty(4)
         scratch_mu = np.empty(4)
         t_in = np.empty(1)
@@ -108,15 +111,15 @@ def _pair_survivals(kinds, params, mus, n):
         voxel = np.ones(3)
         hits = 0
         for _ in range(n):
-            a = K.transport_photon(1, kinds, params, mus, grid, origin, voxel, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0,
-                                   150.0, 60.0, True, False, scratch_t, scratch_mu, t_in, t_out)[0]
-            b = K.transport_photon(1, kinds, params, mus, grid, origin, voxel, 0.0, 0.0, 0.0, -1.0, 0.0, 0.0,
-                                   150.0, 60.0, True, False, scratch_t, scratch_mu, t_in, t_out)[0]
+            a = K.transport_photon(rng, 1, kinds, params, mus, grid, origin, voxel, bound, 0.0, 0.0, 0.0,
+                                   1.0, 0.0, 0.0, 150.0, 60.0, True, False, scratch_t, scratch_mu, t_in, t_out)[0]
+            b = K.transport_photon(rng, 1, kinds, params, mus, grid, origin, voxel, bound, 0.0, 0.0, 0.0,
+                                   -1.0, 0.0, 0.0, 150.0, 60.0, True, False, scratch_t, scratch_mu, t_in, t_out)[0]
             if a == 0 and b == 0:
                 hits += 1
         return hits
 
-    return run(kinds, params, mus, n)
+    return run(rng, kinds, params, mus, n, bound)
 
 
 def test_klein_nishina_total_cross_section():
@@ -131,15 +134,14 @@ def test_klein_nishina_angles():
     from numba import njit
 
     @njit
-    def draw(n):
+    def draw(rng, n):
         out = np.empty(n)
         for i in range(n):
-            out[i] = K.sample_klein_nishina_511()
+            out[i] = K.sample_klein_nishina_511(rng)
         return out
 
-    K.seed_rng(5)
     n = 200_000
-    cos_t = draw(n)
+    cos_t = draw(state_from_seed(5), n)
     edges = np.linspace(-1, 1, 21)
     observed, _ = np.histogram(cos_t, edges)
     fine = np.linspace(-1, 1, 20001)
@@ -267,12 +269,12 @@ def test_non_collinearity_blur_at_centre():
     n_crystals = 4096
     radius = 90.0
     n = 150_000
-    K.seed_rng(9)
     zeros = np.zeros(n)
     empty = np.zeros(0, dtype=np.int32)
-    out = K.detect_pairs(zeros, zeros.copy(), zeros.copy(), zeros.copy(), 0, empty, np.zeros((0, 8)), np.zeros(0),
-                         np.zeros((1, 1, 1)), np.zeros(3), np.ones(3), radius, 50.0, 1.0, 100, n_crystals, 0.0,
-                         False, False, K_SIGMA, np.ones(100 * n_crystals), 0.0, 0.0, 1e9, 0.0)
+    out = K.detect_pairs(state_from_seed(9), zeros, zeros.copy(), zeros.copy(), zeros.copy(), 0, empty,
+                         np.zeros((0, 8)), np.zeros(0), np.zeros((1, 1, 1)), np.zeros(3), np.ones(3),
+                         np.array([1.0, 0.0, 1.0, 0.0]), radius, 50.0, 1.0, 100, n_crystals, 0.0,
+                         False, False, K_SIGMA, np.ones(100 * n_crystals), 0.0, 0.0, 1e9, 0.0, 1.0)
     ja = out[1] % n_crystals
     jb = out[2] % n_crystals
     angle = 2 * np.pi / n_crystals
@@ -533,10 +535,9 @@ def test_emission_points_uniform_in_shapes():
         [85.0, -3.0, 1.0, 20.0, 10.0, 6.0, math.cos(rot), math.sin(rot)],  # ellipsoid, apart
     ])
     kinds = np.array([K.CYLINDER, K.BOX, K.ELLIPSOID], dtype=np.int32)
-    K.seed_rng(3)
     n = 200_000
     xs, ys, zs, ts, which = K.emit_from_shapes(
-        kinds, params, np.array([n, 0.0, n]), np.ones(3), np.zeros((3, 1)), np.zeros((3, 1)),
+        state_from_seed(3), kinds, params, np.array([n, 0, n], dtype=np.int64), np.ones(3), np.zeros((3, 1)), np.zeros((3, 1)),
         np.zeros(3, dtype=np.int64), 1e-4, 0.0, 1.0, 0.0)
     e = which == 2
     assert e.sum() > 0.99 * n

@@ -1,9 +1,11 @@
 """Numba kernels of the simulator: emission, photon transport, randoms.
 
 Only arithmetic lives here; :mod:`twinray.simulate.simulator` validates the
-inputs and documents the physics. Every kernel draws from numba's own
-Mersenne-Twister state, which :func:`seed_rng` sets once per chunk, so the
-output of a chunk depends only on its seed and its inputs.
+inputs and documents the physics. Every kernel draws from the xoshiro256**
+state ``rng`` it is given (:mod:`._rng`, filled once per chunk from the
+chunk's seed), so the output of a chunk depends only on its seed and its
+inputs. Poisson counts (candidates per shape, randoms per step) are drawn by
+the caller with numpy.
 
 Shape parameters are packed in rows of ``SHAPE_PARAMS`` floats:
 ``cx, cy, cz, a, b, c, cos_rot, sin_rot`` (centre in mm; half-extents a, b,
@@ -19,6 +21,7 @@ import numpy as np
 from numba import njit
 
 from ..raytrace import siddon_line_integral
+from ._rng import azimuth, below, exponential, in_ball, isotropic, normal_pair, uniform, unit_disk
 
 CYLINDER = 0
 ELLIPSOID = 1
@@ -42,12 +45,6 @@ N_COUNTERS = 3
 _INF = np.inf
 
 
-@njit(cache=True)
-def seed_rng(seed):
-    """Seed numba's random state (one call per chunk)."""
-    np.random.seed(seed)
-
-
 # ---------------------------------------------------------------- geometry
 
 @njit(cache=True, inline="always")
@@ -62,7 +59,7 @@ def _dir_to_local(prm, dx, dy, dz):
     return dx * prm[6] + dy * prm[7], -dx * prm[7] + dy * prm[6], dz
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def inside_shape(kind, prm, x, y, z):
     """True when the point (mm) lies inside the shape (boundary included)."""
     u, v, w = _to_local(prm, x, y, z)
@@ -103,7 +100,7 @@ def _slab(p, d, half):
     return t1, t2
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def shape_interval(kind, prm, px, py, pz, dx, dy, dz):
     """Interval (t_in, t_out) of the line p + t d inside a convex shape.
 
@@ -194,18 +191,18 @@ def _kn_total(k):
 
 
 @njit(cache=True)
-def sample_klein_nishina_511():
+def sample_klein_nishina_511(rng):
     """cos(theta) of a Compton scatter of a 511 keV photon (Klein-Nishina, by rejection)."""
     while True:
-        cos_t = 2.0 * np.random.random() - 1.0
+        cos_t = 2.0 * uniform(rng) - 1.0
         p = 1.0 / (2.0 - cos_t)
         f = p * p * (p + 1.0 / p - (1.0 - cos_t * cos_t))
-        if 2.0 * np.random.random() < f:
+        if 2.0 * uniform(rng) < f:
             return cos_t
 
 
 @njit(cache=True)
-def _rotate_direction(dx, dy, dz, cos_t, phi):
+def _rotate_direction(dx, dy, dz, cos_t, cos_phi, sin_phi):
     """Unit vector at polar angle acos(cos_t) and azimuth phi about (dx, dy, dz)."""
     sin_t = math.sqrt(max(0.0, 1.0 - cos_t * cos_t))
     # an orthonormal pair perpendicular to d
@@ -220,8 +217,8 @@ def _rotate_direction(dx, dy, dz, cos_t, phi):
     fx = dy * ez - dz * ey
     fy = dz * ex - dx * ez
     fz = dx * ey - dy * ex
-    cp = math.cos(phi) * sin_t
-    sp = math.sin(phi) * sin_t
+    cp = cos_phi * sin_t
+    sp = sin_phi * sin_t
     return (cos_t * dx + cp * ex + sp * fx,
             cos_t * dy + cp * ey + sp * fy,
             cos_t * dz + cp * ez + sp * fz)
@@ -273,26 +270,36 @@ def _distance_at_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz
 
 
 @njit(cache=True)
-def transport_photon(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz,
-                     radius, half_length, attenuate, scatter, seg_t, seg_mu, t_in, t_out):
-    """Follow one 511 keV photon from its origin to the detector cylinder.
+def depth_bound(b_radius, b_zc, b_half_z, b_mu, px, py, pz, dx, dy, dz, t_end):
+    """An upper bound of the optical depth along p + t d, 0 <= t <= t_end (mm).
 
-    Returns ``(status, hx, hy, hz, path_mm, energy_kev)`` with status 0 =
-    unscattered hit, 1 = hit after one Compton scatter, -1 = left the axial
-    extent or travels along the axis, -2 = absorbed or scattered more than once.
+    ``b_radius, b_zc, b_half_z`` (mm) describe a cylinder about the z axis
+    that holds every attenuating shape or voxel, ``b_mu`` (1/cm) is the
+    largest mu. The bound is b_mu times the path length inside that
+    cylinder: scalars only, no walk through the shapes or the voxels, so a
+    photon whose exponential depth exceeds it is known not to interact at a
+    small fraction of the cost of the exact integral. Slightly inflated
+    against rounding.
     """
-    t_hit = cylinder_exit(px, py, dx, dy, radius)
-    if t_hit < 0.0:
-        return -1, 0.0, 0.0, 0.0, 0.0, 0.0
-    hz = pz + t_hit * dz
-    if not attenuate or mode == 0:
-        if abs(hz) >= half_length:
-            return -1, 0.0, 0.0, 0.0, 0.0, 0.0
-        return 0, px + t_hit * dx, py + t_hit * dy, hz, t_hit, 511.0
+    t1, t2 = _quadric_interval(px / b_radius, py / b_radius, 0.0, dx / b_radius, dy / b_radius, 0.0)
+    s1, s2 = _slab(pz - b_zc, dz, b_half_z)
+    lo = max(0.0, max(t1, s1))
+    hi = min(t_end, min(t2, s2))
+    if hi <= lo:
+        return 0.0
+    return 0.1 * b_mu * (hi - lo) * (1.0 + 1e-9) + 1e-12
+
+
+@njit(cache=True)
+def interact_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_hit,
+                    px, py, pz, dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out):
+    """The rest of :func:`transport_photon` for a photon whose exponential optical depth
+    ``depth`` is below the bound of :func:`depth_bound` (``t_hit``: distance to the
+    cylinder, mm). Same returns."""
     tau = _optical_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_hit,
                          seg_t, seg_mu, t_in, t_out)
-    depth = -math.log(1.0 - np.random.random())   # exponential(1) optical depth to the next interaction
     if depth >= tau:
+        hz = pz + t_hit * dz
         if abs(hz) >= half_length:
             return -1, 0.0, 0.0, 0.0, 0.0, 0.0
         return 0, px + t_hit * dx, py + t_hit * dy, hz, t_hit, 511.0
@@ -304,9 +311,9 @@ def transport_photon(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, 
     sx = px + t_s * dx
     sy = py + t_s * dy
     sz = pz + t_s * dz
-    cos_t = sample_klein_nishina_511()
-    phi = 2.0 * math.pi * np.random.random()
-    ux, uy, uz = _rotate_direction(dx, dy, dz, cos_t, phi)
+    cos_t = sample_klein_nishina_511(rng)
+    cos_phi, sin_phi = azimuth(rng)
+    ux, uy, uz = _rotate_direction(dx, dy, dz, cos_t, cos_phi, sin_phi)
     energy = 511.0 / (2.0 - cos_t)
     t2 = cylinder_exit(sx, sy, ux, uy, radius)
     if t2 < 0.0:
@@ -318,11 +325,45 @@ def transport_photon(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, 
     # Klein-Nishina total cross-section (Compton-dominated medium)
     k = energy / 511.0
     ratio = _kn_total(k) / _kn_total(1.0)
-    tau2 = ratio * _optical_depth(mode, kinds, params, mus, grid, origin, voxel, sx, sy, sz, ux, uy, uz, t2,
-                                  seg_t, seg_mu, t_in, t_out)
-    if -math.log(1.0 - np.random.random()) < tau2:
-        return -2, 0.0, 0.0, 0.0, 0.0, 0.0
+    depth2 = exponential(rng)
+    if depth2 < ratio * depth_bound(bound[0], bound[1], bound[2], bound[3], sx, sy, sz, ux, uy, uz, t2):
+        tau2 = ratio * _optical_depth(mode, kinds, params, mus, grid, origin, voxel, sx, sy, sz, ux, uy, uz, t2,
+                                      seg_t, seg_mu, t_in, t_out)
+        if depth2 < tau2:
+            return -2, 0.0, 0.0, 0.0, 0.0, 0.0
     return 1, sx + t2 * ux, sy + t2 * uy, hz, t_s + t2, energy
+
+
+@njit(cache=True)
+def transport_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, px, py, pz, dx, dy, dz,
+                     radius, half_length, attenuate, scatter, seg_t, seg_mu, t_in, t_out):
+    """Follow one 511 keV photon from its origin to the detector cylinder.
+
+    Returns ``(status, hx, hy, hz, path_mm, energy_kev)`` with status 0 =
+    unscattered hit, 1 = hit after one Compton scatter, -1 = left the axial
+    extent (unscattered or after its scatter) or travels along the axis,
+    -2 = interacted and was removed (no scatter simulated, or absorbed or
+    scattered again on the way out).
+
+    The exponential optical depth to the first interaction is compared with
+    :func:`depth_bound` first; the exact integral (shape chords or Siddon)
+    is computed only when the depth is below the bound, which leaves every
+    outcome's probability unchanged. :func:`detect_pairs` does the same
+    steps inline (numba passes array arguments with reference counting, a
+    cost it pays here per call).
+    """
+    t_hit = cylinder_exit(px, py, dx, dy, radius)
+    if t_hit < 0.0:
+        return -1, 0.0, 0.0, 0.0, 0.0, 0.0
+    hz = pz + t_hit * dz
+    if attenuate and mode != 0:
+        depth = exponential(rng)   # exponential(1) optical depth to the next interaction
+        if depth < depth_bound(bound[0], bound[1], bound[2], bound[3], px, py, pz, dx, dy, dz, t_hit):
+            return interact_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_hit,
+                                   px, py, pz, dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
+    if abs(hz) >= half_length:
+        return -1, 0.0, 0.0, 0.0, 0.0, 0.0
+    return 0, px + t_hit * dx, py + t_hit * dy, hz, t_hit, 511.0
 
 
 @njit(cache=True)
@@ -361,37 +402,35 @@ def _tac_value(times, values, n, t):
 
 
 @njit(cache=True, inline="always")
-def _decay_time(t0_s, dt_s, decay_constant):
-    """A time in [t0, t0 + dt) drawn with density proportional to exp(-lambda t) (inverse CDF)."""
-    u = np.random.random()
-    x = decay_constant * dt_s
-    if x < 1e-12:
+def _decay_time(rng, t0_s, dt_s, decay_constant, em1):
+    """A time in [t0, t0 + dt) drawn with density proportional to exp(-lambda t) (inverse CDF);
+    ``em1`` is expm1(-lambda dt), computed once per step."""
+    u = uniform(rng)
+    if decay_constant * dt_s < 1e-12:
         return t0_s + dt_s * u
-    return t0_s - math.log1p(u * math.expm1(-x)) / decay_constant
+    return t0_s - math.log1p(u * em1) / decay_constant
 
 
 @njit(cache=True)
-def emit_from_shapes(kinds, params, means, envelope, tac_times, tac_values, tac_len,
+def emit_from_shapes(rng, kinds, params, counts, envelope, tac_times, tac_values, tac_len,
                      decay_constant, t0_s, dt_s, range_mean_mm):
     """Annihilation points of one time step for an analytic phantom.
 
-    For each shape, a Poisson number of candidates with mean ``means[s]`` is
-    drawn uniformly inside the whole shape; a candidate is kept only where
-    no later shape covers it (replacement). Without a time-activity curve the
-    time follows exp(-lambda t) within the step exactly (inverse CDF) and
-    ``means[s]`` is ``C V f integral(exp(-lambda t) dt)``; with a curve the
-    time is uniform and the candidate is kept with probability
-    ``tac(t) exp(-lambda t) / envelope[s]`` (thinning of an inhomogeneous
-    Poisson process, Lewis & Shedler 1979), ``means[s]`` being
-    ``C V f envelope[s] dt``.
+    For each shape, ``counts[s]`` candidates (a Poisson number drawn by the
+    caller, mean ``C V f integral(exp(-lambda t) dt)`` or, with a curve,
+    ``C V f envelope[s] dt``) are drawn uniformly inside the whole shape; a
+    candidate is kept only where no later shape covers it (replacement).
+    Without a time-activity curve the time follows exp(-lambda t) within the
+    step exactly (inverse CDF); with a curve the time is uniform and the
+    candidate is kept with probability ``tac(t) exp(-lambda t) / envelope[s]``
+    (thinning of an inhomogeneous Poisson process, Lewis & Shedler 1979).
 
     Returns x, y, z (mm), t (s), shape index.
     """
     n_shapes = kinds.shape[0]
-    counts = np.empty(n_shapes, dtype=np.int64)
+    em1 = math.expm1(-decay_constant * dt_s)
     total = 0
     for s in range(n_shapes):
-        counts[s] = np.random.poisson(means[s]) if means[s] > 0.0 else 0
         total += counts[s]
     xs = np.empty(total)
     ys = np.empty(total)
@@ -405,31 +444,27 @@ def emit_from_shapes(kinds, params, means, envelope, tac_times, tac_values, tac_
         has_tac = tac_len[s] > 0
         for _ in range(counts[s]):
             if has_tac:
-                t = t0_s + dt_s * np.random.random()
+                t = t0_s + dt_s * uniform(rng)
                 keep_p = _tac_value(tac_times[s], tac_values[s], tac_len[s], t) * math.exp(-decay_constant * t)
-                if np.random.random() * envelope[s] >= keep_p:
+                if uniform(rng) * envelope[s] >= keep_p:
                     continue
             else:
-                t = _decay_time(t0_s, dt_s, decay_constant)
+                t = _decay_time(rng, t0_s, dt_s, decay_constant, em1)
             # a uniform point inside the shape, in its own frame
             if kind == BOX:
-                u = (2.0 * np.random.random() - 1.0) * prm[3]
-                v = (2.0 * np.random.random() - 1.0) * prm[4]
-                w = (2.0 * np.random.random() - 1.0) * prm[5]
+                u = (2.0 * uniform(rng) - 1.0) * prm[3]
+                v = (2.0 * uniform(rng) - 1.0) * prm[4]
+                w = (2.0 * uniform(rng) - 1.0) * prm[5]
             elif kind == CYLINDER:
-                rho = math.sqrt(np.random.random())
-                phi = 2.0 * math.pi * np.random.random()
-                u = prm[3] * rho * math.cos(phi)
-                v = prm[4] * rho * math.sin(phi)
-                w = (2.0 * np.random.random() - 1.0) * prm[5]
+                u, v, _ = unit_disk(rng)
+                u *= prm[3]
+                v *= prm[4]
+                w = (2.0 * uniform(rng) - 1.0) * prm[5]
             else:
-                rho = np.random.random() ** (1.0 / 3.0)
-                cz = 2.0 * np.random.random() - 1.0
-                phi = 2.0 * math.pi * np.random.random()
-                sz = math.sqrt(1.0 - cz * cz)
-                u = prm[3] * rho * sz * math.cos(phi)
-                v = prm[4] * rho * sz * math.sin(phi)
-                w = prm[5] * rho * cz
+                u, v, w = in_ball(rng)
+                u *= prm[3]
+                v *= prm[4]
+                w *= prm[5]
             x = prm[0] + u * prm[6] - v * prm[7]
             y = prm[1] + u * prm[7] + v * prm[6]
             z = prm[2] + w
@@ -446,68 +481,80 @@ def emit_from_shapes(kinds, params, means, envelope, tac_times, tac_values, tac_
             ts[k] = t
             which[k] = s
             k += 1
-    _positron_range(xs, ys, zs, k, range_mean_mm)
+    _positron_range(rng, xs, ys, zs, k, range_mean_mm)
     return xs[:k], ys[:k], zs[:k], ts[:k], which[:k]
 
 
 @njit(cache=True)
-def emit_from_voxels(cdf, shape, origin, voxel, mean_count, decay_constant, t0_s, dt_s, range_mean_mm):
+def emit_from_voxels(rng, cdf, shape, origin, voxel, count, decay_constant, t0_s, dt_s, range_mean_mm):
     """Annihilation points of one time step for a voxel phantom.
 
-    A Poisson number of annihilations with mean ``mean_count``
-    (``A f integral(exp(-lambda t) dt)``); each picks a voxel with
+    ``count`` annihilations (a Poisson number drawn by the caller, mean
+    ``A f integral(exp(-lambda t) dt)``); each picks a voxel with
     probability proportional to its activity (inverse CDF), a uniform point
     inside it, and a time following exp(-lambda t) within the step.
     """
-    n = np.random.poisson(mean_count) if mean_count > 0.0 else 0
+    n = count
     xs = np.empty(n)
     ys = np.empty(n)
     zs = np.empty(n)
     ts = np.empty(n)
     ny = shape[1]
     nz = shape[2]
+    em1 = math.expm1(-decay_constant * dt_s)
     for k in range(n):
-        ts[k] = _decay_time(t0_s, dt_s, decay_constant)
-        flat = np.searchsorted(cdf, np.random.random() * cdf[-1], side="right")
+        ts[k] = _decay_time(rng, t0_s, dt_s, decay_constant, em1)
+        flat = np.searchsorted(cdf, uniform(rng) * cdf[-1], side="right")
         if flat >= cdf.shape[0]:
             flat = cdf.shape[0] - 1
         ix = flat // (ny * nz)
         iy = (flat // nz) % ny
         iz = flat % nz
-        xs[k] = origin[0] + (ix + np.random.random() - 0.5) * voxel[0]
-        ys[k] = origin[1] + (iy + np.random.random() - 0.5) * voxel[1]
-        zs[k] = origin[2] + (iz + np.random.random() - 0.5) * voxel[2]
-    _positron_range(xs, ys, zs, n, range_mean_mm)
+        xs[k] = origin[0] + (ix + uniform(rng) - 0.5) * voxel[0]
+        ys[k] = origin[1] + (iy + uniform(rng) - 0.5) * voxel[1]
+        zs[k] = origin[2] + (iz + uniform(rng) - 0.5) * voxel[2]
+    _positron_range(rng, xs, ys, zs, n, range_mean_mm)
     return xs, ys, zs, ts, np.zeros(n, dtype=np.int32)
 
 
 @njit(cache=True)
-def _positron_range(xs, ys, zs, n, mean_mm):
+def _positron_range(rng, xs, ys, zs, n, mean_mm):
     """Displace annihilation points isotropically by an exponential distance of mean ``mean_mm``."""
     if mean_mm <= 0.0:
         return
     for i in range(n):
-        r = -mean_mm * math.log(1.0 - np.random.random())
-        cz = 2.0 * np.random.random() - 1.0
-        phi = 2.0 * math.pi * np.random.random()
-        sz = math.sqrt(1.0 - cz * cz)
-        xs[i] += r * sz * math.cos(phi)
-        ys[i] += r * sz * math.sin(phi)
-        zs[i] += r * cz
+        r = mean_mm * exponential(rng)
+        ux, uy, uz = isotropic(rng)
+        xs[i] += r * ux
+        ys[i] += r * uy
+        zs[i] += r * uz
 
 
 # ---------------------------------------------------------------- detection
 
+@njit(cache=True, inline="always")
+def _cos_small(x):
+    """cos(x); below 0.05 rad by its Taylor series to x^8 (remainder < 3e-20), faster than libm."""
+    if abs(x) >= 0.05:
+        return math.cos(x)
+    x2 = x * x
+    return 1.0 - x2 / 2.0 * (1.0 - x2 / 12.0 * (1.0 - x2 / 30.0 * (1.0 - x2 / 56.0)))
+
+
 @njit(cache=True)
-def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
+def detect_pairs(rng, xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel, bound,
                  radius, half_length, pitch, rings, crystals_per_ring, angle_offset,
                  attenuate, scatter, noncollinearity_sigma_rad, detection_probability,
-                 energy_sigma_511_kev, lld_kev, uld_kev, tof_sigma_ps):
+                 energy_sigma_511_kev, lld_kev, uld_kev, tof_sigma_ps, cone):
     """Send a back-to-back photon pair from every annihilation point.
 
-    Returns the coincidences (time_ns, crystal_a, crystal_b, tof_ps,
-    energy_a_kev, energy_b_kev, kind), the singles (crystal, energy_kev) of
-    every photon detected, and the counters.
+    ``bound`` is the attenuation bound of :func:`depth_bound`. ``cone`` is
+    the largest |cos| of the first photon's polar angle: 1 for isotropic
+    pairs; below 1 the directions are isotropic restricted to that cone
+    (z uniform on [-cone, cone]), for the caller's Poisson thinning. Returns the
+    coincidences (time_ns, crystal_a, crystal_b, tof_ps, energy_a_kev,
+    energy_b_kev, kind), the singles (crystal, energy_kev) of every photon
+    detected, and the counters.
     """
     n = xs.shape[0]
     out_time = np.empty(n, dtype=np.int64)
@@ -528,31 +575,84 @@ def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
     n_coinc = 0
     n_single = 0
     counters[N_ANNIHILATIONS] = n
+    use_depth = attenuate and mode != 0
+    b_r = bound[0]
+    b_zc = bound[1]
+    b_hz = bound[2]
+    b_mu = bound[3]
+    # the polar method gives normal deviates in pairs: the second is kept for the next use
+    spare = 0.0
+    have_spare = False
     for i in range(n):
         px = xs[i]
         py = ys[i]
         pz = zs[i]
-        # isotropic direction in 3-D
-        cz = 2.0 * np.random.random() - 1.0
-        phi = 2.0 * math.pi * np.random.random()
-        sz = math.sqrt(1.0 - cz * cz)
-        dx = sz * math.cos(phi)
-        dy = sz * math.sin(phi)
-        dz = cz
+        if cone < 1.0:
+            dz = cone * (2.0 * uniform(rng) - 1.0)
+            cos_phi, sin_phi = azimuth(rng)
+            sz = math.sqrt(1.0 - dz * dz)
+            dx = sz * cos_phi
+            dy = sz * sin_phi
+        else:
+            dx, dy, dz = isotropic(rng)
         ex, ey, ez = -dx, -dy, -dz
         if noncollinearity_sigma_rad > 0.0:
             # small Gaussian tilt of the second photon in two perpendicular directions
-            d1 = noncollinearity_sigma_rad * np.random.standard_normal()
-            d2 = noncollinearity_sigma_rad * np.random.standard_normal()
+            d1, d2 = normal_pair(rng)
+            d1 *= noncollinearity_sigma_rad
+            d2 *= noncollinearity_sigma_rad
             tilt = math.sqrt(d1 * d1 + d2 * d2)
             if tilt > 0.0:
-                ex, ey, ez = _rotate_direction(ex, ey, ez, math.cos(tilt), math.atan2(d2, d1))
-        st_a, ax, ay, az, path_a, en_a = transport_photon(
-            mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz,
-            radius, half_length, attenuate, scatter, seg_t, seg_mu, t_in, t_out)
-        st_b, bx, by, bz, path_b, en_b = transport_photon(
-            mode, kinds, params, mus, grid, origin, voxel, px, py, pz, ex, ey, ez,
-            radius, half_length, attenuate, scatter, seg_t, seg_mu, t_in, t_out)
+                ex, ey, ez = _rotate_direction(ex, ey, ez, _cos_small(tilt), d1 / tilt, d2 / tilt)
+        # transport_photon inline for each photon: geometry and the attenuation bound take
+        # scalars only; the exact walk (array arguments, reference-counted by numba at
+        # every call) runs only for a photon whose depth is below the bound
+        st_a = -1
+        ax = ay = az = path_a = en_a = 0.0
+        t_a = cylinder_exit(px, py, dx, dy, radius)
+        if t_a >= 0.0:
+            depth = 0.0
+            interacts = False
+            if use_depth:
+                depth = exponential(rng)
+                interacts = depth < depth_bound(b_r, b_zc, b_hz, b_mu, px, py, pz, dx, dy, dz, t_a)
+            if interacts:
+                st_a, ax, ay, az, path_a, en_a = interact_photon(
+                    rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_a, px, py, pz,
+                    dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
+            elif abs(pz + t_a * dz) < half_length:
+                st_a = 0
+                ax = px + t_a * dx
+                ay = py + t_a * dy
+                az = pz + t_a * dz
+                path_a = t_a
+                en_a = 511.0
+        st_b = -1
+        bx = by = bz = path_b = en_b = 0.0
+        t_b = cylinder_exit(px, py, ex, ey, radius)
+        if t_b >= 0.0:
+            depth = 0.0
+            interacts = False
+            if use_depth:
+                depth = exponential(rng)
+                interacts = depth < depth_bound(b_r, b_zc, b_hz, b_mu, px, py, pz, ex, ey, ez, t_b)
+            if interacts:
+                st_b, bx, by, bz, path_b, en_b = interact_photon(
+                    rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_b, px, py, pz,
+                    ex, ey, ez, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
+            elif abs(pz + t_b * ez) < half_length:
+                st_b = 0
+                bx = px + t_b * ex
+                by = py + t_b * ey
+                bz = pz + t_b * ez
+                path_b = t_b
+                en_b = 511.0
+        if st_a < 0 and st_b < 0:
+            if st_a == -2:
+                counters[N_PHOTONS_ABSORBED] += 1
+            if st_b == -2:
+                counters[N_PHOTONS_ABSORBED] += 1
+            continue
         if st_a == 1:
             counters[N_PHOTONS_SCATTERED] += 1
         if st_b == 1:
@@ -569,8 +669,14 @@ def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
         meas_b = 0.0
         if st_a >= 0:
             crystal_a = crystal_at(ax, ay, az, crystals_per_ring, rings, pitch, half_length, angle_offset)
-            if np.random.random() < detection_probability[crystal_a]:
-                meas_a = en_a + energy_sigma_511_kev * math.sqrt(en_a / 511.0) * np.random.standard_normal()
+            if uniform(rng) < detection_probability[crystal_a]:
+                if have_spare:
+                    g = spare
+                    have_spare = False
+                else:
+                    g, spare = normal_pair(rng)
+                    have_spare = True
+                meas_a = en_a + energy_sigma_511_kev * math.sqrt(en_a / 511.0) * g
                 if lld_kev <= meas_a <= uld_kev:
                     got_a = True
                     single_crystal[n_single] = crystal_a
@@ -578,8 +684,14 @@ def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
                     n_single += 1
         if st_b >= 0:
             crystal_b = crystal_at(bx, by, bz, crystals_per_ring, rings, pitch, half_length, angle_offset)
-            if np.random.random() < detection_probability[crystal_b]:
-                meas_b = en_b + energy_sigma_511_kev * math.sqrt(en_b / 511.0) * np.random.standard_normal()
+            if uniform(rng) < detection_probability[crystal_b]:
+                if have_spare:
+                    g = spare
+                    have_spare = False
+                else:
+                    g, spare = normal_pair(rng)
+                    have_spare = True
+                meas_b = en_b + energy_sigma_511_kev * math.sqrt(en_b / 511.0) * g
                 if lld_kev <= meas_b <= uld_kev:
                     got_b = True
                     single_crystal[n_single] = crystal_b
@@ -593,7 +705,13 @@ def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
             out_b[n_coinc] = crystal_b
             tof = (t_b_ns - t_a_ns) * 1000.0
             if tof_sigma_ps > 0.0:
-                tof += tof_sigma_ps * np.random.standard_normal()
+                if have_spare:
+                    g = spare
+                    have_spare = False
+                else:
+                    g, spare = normal_pair(rng)
+                    have_spare = True
+                tof += tof_sigma_ps * g
             out_tof[n_coinc] = tof
             out_ea[n_coinc] = meas_a
             out_eb[n_coinc] = meas_b
@@ -605,31 +723,38 @@ def detect_pairs(xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel,
 
 
 @njit(cache=True)
-def draw_randoms(single_crystal, single_energy, n_crystals, tau_s, t0_s, dt_s, window_ns):
-    """Accidental coincidences of one time step from its singles.
+def expected_randoms(single_crystal, n_crystals, tau_s, dt_s):
+    """Expected accidental coincidences of one step from its singles list.
 
-    With S_c the singles rate of crystal c (counts / dt), the rate of
-    accidental pairs (a, b), a != b, is 2 tau S_a S_b (Cherry, Sorenson &
-    Phelps), so the expected number in the step is
-    ``tau/dt * ((sum n)^2 - sum n^2)``. Each accidental pair takes two
-    distinct-crystal singles drawn at random from the step's singles list
-    (crystal probability proportional to its singles count), with their
-    energies; its time is uniform in the step and its arrival-time
-    difference uniform within the window.
-
-    Returns time_ns, crystal_a, crystal_b, tof_ps, energy_a_kev,
-    energy_b_kev and the expected count.
+    With S_c the singles rate of crystal c (counts / dt), accidental pairs
+    (a, b), a != b, occur at rate 2 tau S_a S_b (Cherry, Sorenson & Phelps),
+    so the step expects ``tau/dt * ((sum n)^2 - sum n^2)``.
     """
-    n_single = single_crystal.shape[0]
+    if dt_s <= 0.0:
+        return 0.0
     per_crystal = np.zeros(n_crystals, dtype=np.float64)
-    for i in range(n_single):
+    for i in range(single_crystal.shape[0]):
         per_crystal[single_crystal[i]] += 1.0
-    total = float(n_single)
+    total = float(single_crystal.shape[0])
     sum_sq = 0.0
     for c in range(n_crystals):
         sum_sq += per_crystal[c] * per_crystal[c]
-    expected = tau_s / dt_s * (total * total - sum_sq) if dt_s > 0.0 else 0.0
-    n = np.random.poisson(expected) if expected > 0.0 else 0
+    return tau_s / dt_s * (total * total - sum_sq)
+
+
+@njit(cache=True)
+def draw_randoms(rng, n, single_crystal, single_energy, t0_s, dt_s, window_ns):
+    """``n`` accidental coincidences of one step from its singles.
+
+    ``n`` is a Poisson number of mean :func:`expected_randoms`, drawn by the
+    caller. Each accidental pair takes two distinct-crystal singles drawn at
+    random from the step's singles list (crystal probability proportional to
+    its singles count), with their energies; its time is uniform in the step
+    and its arrival-time difference uniform within the window.
+
+    Returns time_ns, crystal_a, crystal_b, tof_ps, energy_a_kev, energy_b_kev.
+    """
+    n_single = single_crystal.shape[0]
     times = np.empty(n, dtype=np.int64)
     ca = np.empty(n, dtype=np.int32)
     cb = np.empty(n, dtype=np.int32)
@@ -639,14 +764,14 @@ def draw_randoms(single_crystal, single_energy, n_crystals, tau_s, t0_s, dt_s, w
     for k in range(n):
         # redraw both until the crystals differ, so P(a, b) ~ n_a * n_b for a != b
         while True:
-            i = np.random.randint(0, n_single)
-            j = np.random.randint(0, n_single)
+            i = below(rng, n_single)
+            j = below(rng, n_single)
             if single_crystal[j] != single_crystal[i]:
                 break
-        times[k] = np.int64(math.floor((t0_s + dt_s * np.random.random()) * 1e9))
+        times[k] = np.int64(math.floor((t0_s + dt_s * uniform(rng)) * 1e9))
         ca[k] = single_crystal[i]
         cb[k] = single_crystal[j]
-        tof[k] = (np.random.random() - 0.5) * window_ns * 1000.0
+        tof[k] = (uniform(rng) - 0.5) * window_ns * 1000.0
         ea[k] = single_energy[i]
         eb[k] = single_energy[j]
-    return times, ca, cb, tof, ea, eb, expected
+    return times, ca, cb, tof, ea, eb

@@ -90,6 +90,7 @@ from ..images import centred_affine, write_image
 from ..isotopes import get_isotope, mean_positron_range_mm
 from ..scanner import Scanner, load_scanner
 from . import _kernels as K
+from ._rng import state_from_seed
 from .phantom import (Phantom, PhysicsOptions, check_phantom_in_fov, check_physics, label_image, rasterize,
                       visible_volumes_ml)
 
@@ -214,6 +215,7 @@ class _Source:
     grid: np.ndarray
     origin: np.ndarray
     voxel: np.ndarray
+    bound: np.ndarray         # attenuation bound of K.depth_bound: r, zc, half_z (mm), mu_max (1/cm)
     voxel_cdf: np.ndarray | None
     voxel_total_bq: float
     activity_image: np.ndarray | None
@@ -267,7 +269,7 @@ def _prepare_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOptions)
         })
     # the truth images are rasterized only when they are written
     return _Source(mode, kinds, params, mus, conc, tac_times, tac_values, tac_len, dummy_grid, zero3, ones3,
-                   None, 0.0, None, None, None, table)
+                   _shape_bound(kinds, params, mus), None, 0.0, None, None, None, table)
 
 
 def _prepare_voxel_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOptions) -> _Source:
@@ -310,8 +312,45 @@ def _prepare_voxel_source(phantom: Phantom, scanner: Scanner, physics: PhysicsOp
     empty = np.zeros(0, dtype=np.int32)
     return _Source(mode, empty, np.zeros((0, K.SHAPE_PARAMS)), np.zeros(0), np.zeros(0), np.zeros((0, 1)),
                    np.zeros((0, 1)), np.zeros(0, dtype=np.int64), np.ascontiguousarray(mu_grid), origin, voxel,
-                   cdf, float(cdf[-1]), activity, mu, affine,
+                   _voxel_bound(mu_grid, origin, voxel), cdf, float(cdf[-1]), activity, mu, affine,
                    [{"name": "voxel", "type": "voxel", "activity_bq_at_start": float(cdf[-1])}])
+
+
+def _bound_array(reach_mm, z_lo_mm, z_hi_mm, mu_max_per_cm) -> np.ndarray:
+    """Kernel form of the attenuation bound, a little larger than the material against rounding."""
+    if mu_max_per_cm <= 0.0:
+        return np.array([1.0, 0.0, 1.0, 0.0])
+    margin = 1e-6 * (1.0 + reach_mm + abs(z_lo_mm) + abs(z_hi_mm))
+    return np.array([reach_mm + margin, 0.5 * (z_lo_mm + z_hi_mm), 0.5 * (z_hi_mm - z_lo_mm) + margin,
+                     mu_max_per_cm])
+
+
+def _shape_bound(kinds, params, mus) -> np.ndarray:
+    """A cylinder about the z axis holding every attenuating shape, and the largest mu (1/cm)."""
+    reach, z_lo, z_hi, mu_max = 0.0, math.inf, -math.inf, 0.0
+    for kind, prm, mu in zip(kinds, params, mus):
+        if mu <= 0.0:
+            continue
+        cx, cy, cz, a, b, c = prm[:6]
+        # rotation is about z only: the in-plane extent is within max(a, b) (box: its half-diagonal)
+        half = math.hypot(a, b) if kind == K.BOX else max(a, b)
+        reach = max(reach, math.hypot(cx, cy) + half)
+        z_lo, z_hi = min(z_lo, cz - c), max(z_hi, cz + c)
+        mu_max = max(mu_max, float(mu))
+    return _bound_array(reach, z_lo, z_hi, mu_max)
+
+
+def _voxel_bound(mu_grid, origin, voxel) -> np.ndarray:
+    """The same for a voxel mu-map (voxel centres at origin + index * voxel)."""
+    idx = np.nonzero(mu_grid > 0)
+    if idx[0].size == 0:
+        return _bound_array(0.0, 0.0, 0.0, 0.0)
+    x = origin[0] + idx[0] * voxel[0]
+    y = origin[1] + idx[1] * voxel[1]
+    z = origin[2] + idx[2] * voxel[2]
+    reach = float(np.max(np.hypot(x, y))) + 0.5 * math.hypot(voxel[0], voxel[1])
+    return _bound_array(reach, float(z.min()) - 0.5 * abs(voxel[2]), float(z.max()) + 0.5 * abs(voxel[2]),
+                        float(mu_grid.max()))
 
 
 def _chunk_envelopes(src: _Source, lam: float, t0: float, t1: float) -> np.ndarray:
@@ -361,6 +400,125 @@ def _peak_candidate_rate(src: _Source, pf: float) -> float:
         peak = 1.0 if k == 0 else float(src.tac_values[i, :k].max())
         rate += src.concentrations[i] * _shape_volume_ml(src.kinds[i], src.params[i]) * pf * peak
     return rate
+
+
+#: Largest value of the kernels' exponential(1) sampler, -ln(1 - u) with u <= 1 - 2**-53.
+EXPONENTIAL_MAX = 53.0 * math.log(2.0)
+#: Largest radius sqrt(g1^2 + g2^2) of a polar-method normal pair (u, v multiples of 2**-52,
+#: so s = u^2 + v^2 >= 2**-104): sqrt(-2 ln 2**-104).
+NORMAL_PAIR_MAX = math.sqrt(2.0 * 104.0 * math.log(2.0))
+
+
+@dataclasses.dataclass(frozen=True)
+class StepSettings:
+    """Per-simulation constants of :func:`simulate_step` (internal)."""
+
+    lam: float                        # decay constant, 1/s
+    positron_fraction: float
+    range_mm: float                   # mean positron range, 0 = off
+    noncollinearity_sigma_rad: float  # 0 = off
+    energy_sigma_kev: float           # Gaussian sigma at 511 keV
+    tau_s: float                      # half the coincidence window
+    cone: float                       # detection_cone()
+
+
+def detection_cone(src: _Source, scanner: Scanner, physics: PhysicsOptions, range_mm: float,
+                   noncollinearity_sigma_rad: float) -> float:
+    """|cos| of the polar angle beyond which neither photon of a pair can reach the crystals.
+
+    Only without photon interactions (no attenuation simulated, or no material): then a
+    pair whose first photon lies outside this cone makes no single and no coincidence, so
+    the simulator draws the candidates inside and outside the cone as independent Poisson
+    counts (binomial split of the Poisson count with p = cone, exact for isotropic pairs,
+    whose cos is uniform) and follows only those inside. A photon from in-plane radius
+    r <= r_e travels at least R - r_e in-plane, hence at least (R - r_e) tan(elevation)
+    axially, and misses the ring when that exceeds L/2 + |z|max. The emission region is
+    widened by the largest positron displacement the sampler can draw (EXPONENTIAL_MAX
+    mean ranges) and the elevation by the largest non-collinearity tilt it can draw
+    (NORMAL_PAIR_MAX sigma), so the cut is exact for the generator, not just probable.
+    Returns 1 (no cut) for voxel phantoms, with attenuation, or when the region reaches
+    the ring.
+    """
+    if src.voxel_cdf is not None or src.mode != 0:
+        return 1.0
+    reach, z_max = 0.0, 0.0
+    for kind, prm, conc in zip(src.kinds, src.params, src.concentrations):
+        if conc <= 0.0:
+            continue
+        cx, cy, cz, a, b, c = prm[:6]
+        half = math.hypot(a, b) if kind == K.BOX else max(a, b)
+        reach = max(reach, math.hypot(cx, cy) + half)
+        z_max = max(z_max, abs(cz - c), abs(cz + c))
+    margin = EXPONENTIAL_MAX * range_mm * (1.0 + 1e-9) + 1e-6
+    reach += margin
+    z_max += margin
+    if reach >= scanner.radius_mm:
+        return 1.0
+    elevation = math.atan2(0.5 * scanner.axial_length_mm + z_max, scanner.radius_mm - reach)
+    elevation += 1.001 * NORMAL_PAIR_MAX * noncollinearity_sigma_rad + 1e-9
+    if elevation >= 0.5 * math.pi:
+        return 1.0
+    return math.sin(elevation)
+
+
+def simulate_step(src: _Source, scanner: Scanner, physics: PhysicsOptions, settings: StepSettings,
+                  detection_probability: np.ndarray, seed: int, k: int, t0: float, t1: float) -> tuple:
+    """Simulate step ``k``, [t0, t1) s: emission, photon pairs, randoms and delayed.
+
+    Poisson counts come from numpy (``SeedSequence(seed, spawn_key=(0, k, 0))``),
+    everything per event from the kernels' xoshiro256** stream
+    (``spawn_key=(0, k, 1)``). Returns ``(parts, single_crystal, single_energy,
+    counters, (expected randoms, expected delayed))`` where ``parts`` is a list of
+    (time_ns, crystal_a, crystal_b, tof_ps, energy_a, energy_b, kind) tuples, kind 3
+    for delayed; ``counters[N_ANNIHILATIONS]`` includes the annihilations outside the
+    detection cone, which are counted but not followed.
+    """
+    counts_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0, k, 0)))
+    rng = state_from_seed(np.random.SeedSequence(seed, spawn_key=(0, k, 1)))
+    lam, pf, dt = settings.lam, settings.positron_fraction, t1 - t0
+    n_outside = 0
+    if src.voxel_cdf is not None:
+        n_emit = int(counts_rng.poisson(src.voxel_total_bq * pf * _decay_integral_s(lam, t0, t1)))
+        xs, ys, zs, ts, _ = K.emit_from_voxels(
+            rng, src.voxel_cdf, np.array(src.activity_image.shape, dtype=np.int64), src.origin, src.voxel,
+            n_emit, lam, t0, dt, settings.range_mm)
+    else:
+        means, env = emission_means(src, lam, pf, t0, t1)
+        counts = counts_rng.poisson(means).astype(np.int64)
+        if settings.cone < 1.0:
+            inside = counts_rng.binomial(counts, settings.cone).astype(np.int64)
+            outside = counts - inside
+            counts = inside
+            # outside the cone nothing is detected; only the annihilation count is
+            # needed, and it needs the thinning (replacement, time-activity curve) only
+            # where a later shape or a curve can reject a candidate
+            thinned = (src.tac_len > 0) | (np.arange(len(src.kinds)) < len(src.kinds) - 1)
+            n_outside = int(outside[~thinned].sum())
+            if np.any(outside[thinned] > 0):
+                kept = K.emit_from_shapes(rng, src.kinds, src.params, np.where(thinned, outside, 0), env,
+                                          src.tac_times, src.tac_values, src.tac_len, lam, t0, dt, 0.0)[0]
+                n_outside += len(kept)
+        xs, ys, zs, ts, _ = K.emit_from_shapes(
+            rng, src.kinds, src.params, counts, env, src.tac_times, src.tac_values, src.tac_len,
+            lam, t0, dt, settings.range_mm)
+    (c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind, s_crystal, s_energy, ctr) = K.detect_pairs(
+        rng, xs, ys, zs, ts, src.mode, src.kinds, src.params, src.mus, src.grid, src.origin, src.voxel,
+        src.bound, scanner.radius_mm, 0.5 * scanner.axial_length_mm, scanner.axial_pitch_mm, scanner.rings,
+        scanner.crystals_per_ring, scanner.angle_offset_rad, physics.attenuation, physics.scatter,
+        settings.noncollinearity_sigma_rad, detection_probability, settings.energy_sigma_kev, physics.lld_kev,
+        physics.uld_kev, scanner.tof_fwhm_ps * FWHM_TO_SIGMA, settings.cone)
+    ctr[K.N_ANNIHILATIONS] += n_outside
+    parts = [(c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind)]
+    expected = [0.0, 0.0]
+    for i, (kind, wanted) in enumerate(((K.RANDOM, physics.randoms), (3, physics.delayed))):
+        if not wanted:
+            continue
+        expected[i] = K.expected_randoms(s_crystal, scanner.n_crystals, settings.tau_s, dt)
+        r_time, r_a, r_b, r_tof, r_ea, r_eb = K.draw_randoms(
+            rng, int(counts_rng.poisson(expected[i])), s_crystal, s_energy, t0, dt,
+            scanner.coincidence_window_ns)
+        parts.append((r_time, r_a, r_b, r_tof, r_ea, r_eb, np.full(len(r_time), kind, dtype=np.int8)))
+    return parts, s_crystal, s_energy, ctr, tuple(expected)
 
 
 def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, duration_s: float | None = None,
@@ -469,6 +627,9 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
     nc_sigma = NONCOLLINEARITY_SIGMA_RAD if physics.non_collinearity else 0.0
     range_mm = mean_positron_range_mm(iso.name) if physics.positron_range else 0.0
     lo, hi = scanner.energy_window_kev
+    settings = StepSettings(lam=lam, positron_fraction=pf, range_mm=range_mm, noncollinearity_sigma_rad=nc_sigma,
+                            energy_sigma_kev=e_sigma, tau_s=tau_s,
+                            cone=detection_cone(src, scanner, physics, range_mm, nc_sigma))
     kernel_s = 0.0
     writer = EventWriter(output, metadata, columns)
     try:
@@ -476,32 +637,11 @@ def simulate(phantom: Phantom, output, *, scanner: Scanner | None = None, durati
             t0 = k * step
             t1 = duration if k == n_chunks - 1 else (k + 1) * step
             dt = t1 - t0
-            chunk_seed = int(np.random.SeedSequence(seed, spawn_key=(0, k)).generate_state(1, np.uint32)[0])
             tk = time.perf_counter()
-            K.seed_rng(chunk_seed)
-            if src.voxel_cdf is not None:
-                xs, ys, zs, ts, _ = K.emit_from_voxels(
-                    src.voxel_cdf, np.array(src.activity_image.shape, dtype=np.int64), src.origin, src.voxel,
-                    src.voxel_total_bq * pf * _decay_integral_s(lam, t0, t1), lam, t0, dt, range_mm)
-            else:
-                means, env = emission_means(src, lam, pf, t0, t1)
-                xs, ys, zs, ts, _ = K.emit_from_shapes(
-                    src.kinds, src.params, means, env, src.tac_times, src.tac_values, src.tac_len,
-                    lam, t0, dt, range_mm)
-            (c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind, s_crystal, s_energy, ctr) = K.detect_pairs(
-                xs, ys, zs, ts, src.mode, src.kinds, src.params, src.mus, src.grid, src.origin, src.voxel,
-                scanner.radius_mm, half_length, scanner.axial_pitch_mm, scanner.rings,
-                scanner.crystals_per_ring, scanner.angle_offset_rad, physics.attenuation, physics.scatter,
-                nc_sigma, detection_probability, e_sigma, physics.lld_kev, physics.uld_kev,
-                scanner.tof_fwhm_ps * FWHM_TO_SIGMA)
-            parts = [(c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind)]
-            for kind, wanted in ((K.RANDOM, physics.randoms), (3, physics.delayed)):
-                if not wanted:
-                    continue
-                r_time, r_a, r_b, r_tof, r_ea, r_eb, expected = K.draw_randoms(
-                    s_crystal, s_energy, scanner.n_crystals, tau_s, t0, dt, scanner.coincidence_window_ns)
-                other["expected_randoms" if kind == K.RANDOM else "expected_delayed"] += expected
-                parts.append((r_time, r_a, r_b, r_tof, r_ea, r_eb, np.full(len(r_time), kind, dtype=np.int8)))
+            parts, s_crystal, s_energy, ctr, expected = simulate_step(
+                src, scanner, physics, settings, detection_probability, seed, k, t0, t1)
+            other["expected_randoms"] += expected[0]
+            other["expected_delayed"] += expected[1]
             kernel_s += time.perf_counter() - tk
             time_ns, ca, cb, tof_ps, ea, eb, kinds = (np.concatenate(col) for col in zip(*parts))
             order = np.argsort(time_ns, kind="stable")
