@@ -7,6 +7,7 @@ cylinder of radius 30 mm, both filling the axial field of view.
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -102,3 +103,23 @@ def test_corrected_cylinder_matches_analytic_projection(simulated):
     # Outside the object nothing is left but noise.
     outside = np.abs(s) > 40.0
     assert abs(profile[outside].mean()) < 0.01 * profile[inside].mean()
+
+
+DEMO = Path(__file__).resolve().parents[1] / "simulated_events"
+
+
+@pytest.mark.skipif(not (DEMO / "normalization_cylinder.parquet").exists(), reason="no shipped demo data")
+def test_shipped_normalization_scan(tmp_path):
+    """The shipped benchtop normalization scan: efficiencies at the Poisson limit of its counts.
+
+    Issue 4 asks for a correlation >= 0.95; with 10 % efficiency spread that
+    needs about 1000 counts per crystal fan, more than the shipped scan has
+    (about 400), so the check is against the limit s / sqrt(s^2 + 1/F) the
+    counts allow (references.md s.3 fan-sum oracle).
+    """
+    result = make_normalization(DEMO / "normalization_cylinder.parquet", tmp_path / "norm.h5")
+    truth = np.array(json.loads((DEMO / "normalization_cylinder_truth.json").read_text())["crystal_efficiency"])
+    fan = 2.0 * result.accounting.prompts_binned / truth.size
+    spread = np.std(truth / truth.mean())
+    best = spread / math.sqrt(spread ** 2 + 1.0 / fan)
+    assert np.corrcoef(result.fit.crystal_efficiency, truth)[0, 1] >= best - 0.02
