@@ -19,7 +19,10 @@ alternating the two closed-form updates
     eps_a <- F_a / sum_b eps_b g src        (the fan-sum step)
     g     <- M / sum_(a,b in cell) eps_a eps_b src
 
-Randoms are removed by subtracting the delayed fan and table sums.
+``g`` is taken to have the mirror symmetry of a ring scanner (the same for
+``s`` and ``-s`` and for ring difference ``d`` and ``-d``), so each value is
+fitted to the pooled counts of four cells. Randoms are removed by
+subtracting the delayed fan and table sums.
 
 The normalization factor of a bin is ``norm = 1 / sum over its crystal pairs
 of eps_a eps_b g`` (so it also holds the axial-compression factor, 1/number
@@ -322,6 +325,7 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
                                 "covers no LOR of this sinogram geometry")
     eps = np.ones_like(F)
     g = np.where(covered, 1.0, 0.0)
+    M_sym = _mirror_sum(M)
     for _ in range(int(iterations)):
         fan_model = np.zeros_like(F)
         table_model = np.zeros_like(src)
@@ -330,8 +334,10 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
         fan_model[:] = 0.0
         table_model[:] = 0.0
         _kernels.fan_and_table_sums(eps, np.ascontiguousarray(g * src), *args, fan_model, table_model)
-        denom = table_model * src
-        g = np.where(covered & (denom > 0), M / np.where(denom > 0, denom, 1.0), 0.0)
+        # Mirror symmetry of a ring scanner (s -> -s, ring difference -> -ring difference): one g for
+        # the four mirror cells, fitted to their pooled counts (four times the counts per value).
+        denom = _mirror_sum(table_model * src)
+        g = np.where(covered & (denom > 0), M_sym / np.where(denom > 0, denom, 1.0), 0.0)
     notes = []
     dead = int(np.count_nonzero(eps == 0))
     if dead:
@@ -348,6 +354,11 @@ def fit_normalization(fan: FanSums, geometry: SinogramGeometry, source: Normaliz
     norm = norm_from_factors(geometry, eps, g)
     return NormalizationFit(crystal_efficiency=eps, geometric_factor=g, norm=norm,
                             covered=covered, iterations=int(iterations), notes=tuple(notes))
+
+
+def _mirror_sum(table):
+    """Sum of a (ring difference, radial) table and its mirror images in s and in ring difference."""
+    return table + table[::-1, :] + table[:, ::-1] + table[::-1, ::-1]
 
 
 def _fill_uncovered(g, covered, has_pairs):
