@@ -120,7 +120,7 @@ def main(argv=None):
 
     from bench_binning import generate
 
-    from twinray.corrections.apply import CorrectionInputs, CorrectionOptions, prepare_corrections
+    from twinray.corrections.apply import CorrectionOptions, prepare_corrections
     from twinray.corrections.attenuation import attenuation_factors_from_file
     from twinray.corrections.normalization import norm_from_factors
     from twinray.corrections.randoms import randoms_from_delayed
