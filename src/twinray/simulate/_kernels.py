@@ -121,7 +121,7 @@ def shape_interval(kind, prm, px, py, pz, dx, dy, dz):
     return max(t1, max(s1, r1)), min(t2, min(s2, r2))
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def path_segments(kinds, params, mus, px, py, pz, dx, dy, dz, t_end, seg_t, seg_mu, t_in, t_out):
     """Cut the segment p + t d, 0 <= t <= t_end, into pieces of constant mu.
 
@@ -226,7 +226,7 @@ def _rotate_direction(dx, dy, dz, cos_t, cos_phi, sin_phi):
 
 # ---------------------------------------------------------------- attenuation
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _optical_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_end,
                    seg_t, seg_mu, t_in, t_out):
     """Dimensionless integral of mu (1/cm) along p + t d, 0 <= t <= t_end (mm)."""
@@ -243,18 +243,24 @@ def _optical_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx
 
 
 @njit(cache=True)
+def _depth_to_distance(n, seg_t, seg_mu, target, t_end):
+    """Distance where the optical depth over the first ``n`` pieces reaches ``target``."""
+    acc = 0.0
+    for i in range(n):
+        piece = 0.1 * seg_mu[i] * (seg_t[i + 1] - seg_t[i])
+        if acc + piece >= target and seg_mu[i] > 0.0:
+            return seg_t[i] + (target - acc) / (0.1 * seg_mu[i])
+        acc += piece
+    return t_end
+
+
+@njit(cache=True, inline="always")
 def _distance_at_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_end,
                        target, seg_t, seg_mu, t_in, t_out):
     """Distance along the path where the optical depth reaches ``target`` (< total)."""
     if mode == 1:
         n = path_segments(kinds, params, mus, px, py, pz, dx, dy, dz, t_end, seg_t, seg_mu, t_in, t_out)
-        acc = 0.0
-        for i in range(n):
-            piece = 0.1 * seg_mu[i] * (seg_t[i + 1] - seg_t[i])
-            if acc + piece >= target and seg_mu[i] > 0.0:
-                return seg_t[i] + (target - acc) / (0.1 * seg_mu[i])
-            acc += piece
-        return t_end
+        return _depth_to_distance(n, seg_t, seg_mu, target, t_end)
     # voxel mu-map: bisection on the monotone cumulative depth
     lo = 0.0
     hi = t_end
@@ -290,14 +296,23 @@ def depth_bound(b_radius, b_zc, b_half_z, b_mu, px, py, pz, dx, dy, dz, t_end):
     return 0.1 * b_mu * (hi - lo) * (1.0 + 1e-9) + 1e-12
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def interact_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_hit,
                     px, py, pz, dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out):
     """The rest of :func:`transport_photon` for a photon whose exponential optical depth
     ``depth`` is below the bound of :func:`depth_bound` (``t_hit``: distance to the
     cylinder, mm). Same returns."""
-    tau = _optical_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_hit,
-                         seg_t, seg_mu, t_in, t_out)
+    if mode == 1:
+        # the pieces stay in seg_t / seg_mu for the interaction point below
+        n_pieces = path_segments(kinds, params, mus, px, py, pz, dx, dy, dz, t_hit, seg_t, seg_mu, t_in, t_out)
+        tau = 0.0
+        for i in range(n_pieces):
+            tau += seg_mu[i] * (seg_t[i + 1] - seg_t[i])
+        tau *= 0.1
+    else:
+        n_pieces = 0
+        tau = _optical_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_hit,
+                             seg_t, seg_mu, t_in, t_out)
     if depth >= tau:
         hz = pz + t_hit * dz
         if abs(hz) >= half_length:
@@ -306,8 +321,11 @@ def interact_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, d
     if not scatter:
         return -2, 0.0, 0.0, 0.0, 0.0, 0.0
     # one Compton scatter (all interactions at 511 keV treated as Compton)
-    t_s = _distance_at_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_hit,
-                             depth, seg_t, seg_mu, t_in, t_out)
+    if mode == 1:
+        t_s = _depth_to_distance(n_pieces, seg_t, seg_mu, depth, t_hit)
+    else:
+        t_s = _distance_at_depth(mode, kinds, params, mus, grid, origin, voxel, px, py, pz, dx, dy, dz, t_hit,
+                                 depth, seg_t, seg_mu, t_in, t_out)
     sx = px + t_s * dx
     sy = py + t_s * dy
     sz = pz + t_s * dz
@@ -576,6 +594,8 @@ def detect_pairs(rng, xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, vo
     n_single = 0
     counters[N_ANNIHILATIONS] = n
     use_depth = attenuate and mode != 0
+    status = np.empty(2, dtype=np.int64)
+    hit = np.empty((2, 5))
     b_r = bound[0]
     b_zc = bound[1]
     b_hz = bound[2]
@@ -604,49 +624,44 @@ def detect_pairs(rng, xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, vo
             tilt = math.sqrt(d1 * d1 + d2 * d2)
             if tilt > 0.0:
                 ex, ey, ez = _rotate_direction(ex, ey, ez, _cos_small(tilt), d1 / tilt, d2 / tilt)
-        # transport_photon inline for each photon: geometry and the attenuation bound take
-        # scalars only; the exact walk (array arguments, reference-counted by numba at
-        # every call) runs only for a photon whose depth is below the bound
-        st_a = -1
-        ax = ay = az = path_a = en_a = 0.0
-        t_a = cylinder_exit(px, py, dx, dy, radius)
-        if t_a >= 0.0:
-            depth = 0.0
-            interacts = False
-            if use_depth:
-                depth = exponential(rng)
-                interacts = depth < depth_bound(b_r, b_zc, b_hz, b_mu, px, py, pz, dx, dy, dz, t_a)
-            if interacts:
-                st_a, ax, ay, az, path_a, en_a = interact_photon(
-                    rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_a, px, py, pz,
-                    dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
-            elif abs(pz + t_a * dz) < half_length:
-                st_a = 0
-                ax = px + t_a * dx
-                ay = py + t_a * dy
-                az = pz + t_a * dz
-                path_a = t_a
-                en_a = 511.0
-        st_b = -1
-        bx = by = bz = path_b = en_b = 0.0
-        t_b = cylinder_exit(px, py, ex, ey, radius)
-        if t_b >= 0.0:
-            depth = 0.0
-            interacts = False
-            if use_depth:
-                depth = exponential(rng)
-                interacts = depth < depth_bound(b_r, b_zc, b_hz, b_mu, px, py, pz, ex, ey, ez, t_b)
-            if interacts:
-                st_b, bx, by, bz, path_b, en_b = interact_photon(
-                    rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_b, px, py, pz,
-                    ex, ey, ez, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
-            elif abs(pz + t_b * ez) < half_length:
-                st_b = 0
-                bx = px + t_b * ex
-                by = py + t_b * ey
-                bz = pz + t_b * ez
-                path_b = t_b
-                en_b = 511.0
+        # transport_photon inline, once for both photons (one copy of the inlined walk): geometry
+        # and the attenuation bound take scalars only; the exact walk runs only for a photon
+        # whose depth is below the bound
+        for ph in range(2):
+            if ph == 0:
+                ux, uy, uz = dx, dy, dz
+            else:
+                ux, uy, uz = ex, ey, ez
+            st = -1
+            hx = hy = hz = path = en = 0.0
+            t_c = cylinder_exit(px, py, ux, uy, radius)
+            if t_c >= 0.0:
+                depth = 0.0
+                interacts = False
+                if use_depth:
+                    depth = exponential(rng)
+                    interacts = depth < depth_bound(b_r, b_zc, b_hz, b_mu, px, py, pz, ux, uy, uz, t_c)
+                if interacts:
+                    st, hx, hy, hz, path, en = interact_photon(
+                        rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_c, px, py, pz,
+                        ux, uy, uz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out)
+                elif abs(pz + t_c * uz) < half_length:
+                    st = 0
+                    hx = px + t_c * ux
+                    hy = py + t_c * uy
+                    hz = pz + t_c * uz
+                    path = t_c
+                    en = 511.0
+            status[ph] = st
+            hit[ph, 0] = hx
+            hit[ph, 1] = hy
+            hit[ph, 2] = hz
+            hit[ph, 3] = path
+            hit[ph, 4] = en
+        st_a = status[0]
+        st_b = status[1]
+        ax, ay, az, path_a, en_a = hit[0, 0], hit[0, 1], hit[0, 2], hit[0, 3], hit[0, 4]
+        bx, by, bz, path_b, en_b = hit[1, 0], hit[1, 1], hit[1, 2], hit[1, 3], hit[1, 4]
         if st_a < 0 and st_b < 0:
             if st_a == -2:
                 counters[N_PHOTONS_ABSORBED] += 1
