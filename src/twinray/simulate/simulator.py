@@ -62,6 +62,17 @@ are listed with it, and in DEVELOPERS.md, "Simulator physics"):
   pair may form a random (no fan restriction); no dead time, no pile-up, no
   singles from activity outside the phantom.
 
+Random numbers and speed: step ``k`` draws its Poisson counts with numpy from
+``SeedSequence(seed, spawn_key=(0, k, 0))`` and everything per event from a
+xoshiro256** stream seeded from ``spawn_key=(0, k, 1)`` (:mod:`._rng`), so the
+same seed, inputs and step length give a byte-identical file. Two shortcuts
+leave every output's distribution unchanged: a photon's exponential depth is
+compared with a cheap upper bound of its optical depth before the exact walk
+(:func:`._kernels.depth_bound`), and, when photons cannot interact (no
+attenuation simulated, or no material), only the candidates whose pair can
+reach the ring are followed; the others are counted as annihilations
+(:func:`detection_cone`).
+
 References
 ----------
 P. A. W. Lewis and G. S. Shedler, "Simulation of nonhomogeneous Poisson
