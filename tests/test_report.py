@@ -525,3 +525,30 @@ def test_slices_mask_greys_out_voxels_outside():
     shown = fig.axes[0].images[0].get_array()
     assert np.ma.is_masked(shown) and shown.mask.sum() == 100 - 36
     assert fig.axes[0].images[0].get_clim()[1] < 10.0
+
+
+def test_every_command_offers_report():
+    """--report is in the help of every command that writes outputs (calibrate and demo excepted)."""
+    from twinray.cli.main import COMMANDS, cli
+
+    for name in sorted(set(COMMANDS) - {"demo", "calibrate"}):
+        command = cli.get_command(None, name)
+        assert any("--report" in p.opts for p in command.params), name
+
+
+def test_tac_command_writes_its_report(tmp_path):
+    """A real command with --report: the report is written, parses, and is listed in --json outputs."""
+    import contextlib
+
+    from twinray.cli.main import main
+
+    frames = np.stack([_phantom() * k for k in (1, 2, 3)], axis=-1)
+    image = _write_image(tmp_path / "dyn.nii.gz", frames, {"Units": "Bq/mL", "FrameTimesStart": [0, 10, 20],
+                                                           "FrameDuration": [10, 10, 10]})
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        code = main(["tac", str(image), "-o", str(tmp_path / "tac.csv"), "--roi", "hot=sphere:6,0,3,3",
+                     "--report", str(tmp_path / "tac.html"), "--json"])
+    assert code == 0
+    assert str(tmp_path / "tac.html") in json.loads(out.getvalue())["outputs"]
+    _check_report(tmp_path / "tac.html", ["Time-activity curves: tac.csv"])

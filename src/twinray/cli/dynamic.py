@@ -12,6 +12,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _DEFAULT_BATCH = 1 << 20
 
@@ -138,11 +139,12 @@ class StageBars:
 @click.option("--decay-reference", type=click.Choice(["start", "injection"]), default="start", show_default=True,
               help="Decay-correct to the acquisition start or to the injection time (must be in the metadata).")
 @correction_and_recon_options
+@report_option
 @common_options
 def dynamic_command(events, output_dir, schedule, truncate, decay_reference, scanner, rebin, norm_path, mu_path,
                     randoms, singles_path, scatter, deadtime_ns, method, iterations, subsets, filter_name, cutoff,
                     matrix, voxel_mm, recon_mode, postfilter_mm, calibration, calibration_factor, workers, scheduler,
-                    batch_size, memory_gb, run):
+                    batch_size, memory_gb, report_path, run):
     """Frame the events of EVENTS into a dynamic series: bin every frame of the
     schedule in one pass, correct each frame (its own delayed events, norm,
     attenuation, scatter), reconstruct the frames in parallel, and
@@ -193,7 +195,9 @@ def dynamic_command(events, output_dir, schedule, truncate, decay_reference, sca
         run.say(f"  decay-corrected ({side['TracerRadionuclide']}) to t = {side['ImageDecayCorrectionTime']:g} s: "
                 f"factors {min(result.decay_factors):.4f} .. {max(result.decay_factors):.4f}")
     run.say(f"  units {side.get('Units')}; {side.get('ReconMethodName')}")
-    run.finish({"outputs": [str(p) for p in result.outputs], "accounting": acc.to_dict(),
+    written = write_report(run, report_path, "report_for_dynamic", output_dir, events_path=events,
+                           scanner=scanner, inputs=[events, norm_path, mu_path, singles_path, calibration])
+    run.finish({"outputs": [*(str(p) for p in result.outputs), *written], "accounting": acc.to_dict(),
                 "frame_accounting": [a.to_dict() for a in result.frame_accounting],
                 "timings_s": result.timings_s, "warnings": list(result.warnings),
                 "frames": s.n_frames, "schedule": s.describe(),

@@ -8,6 +8,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _BARS = " ▁▂▃▄▅▆▇█"
 
@@ -34,8 +35,9 @@ def _fmt_time(seconds) -> str:
               help="Width of the count-rate bins in seconds (default: about 30 bins).")
 @click.option("--batch-size", type=click.IntRange(min=1), default=1 << 20, show_default=True,
               help="Events decoded per batch.")
+@report_option
 @common_options
-def inspect_command(events, scanner, rate_bin, batch_size, run):
+def inspect_command(events, scanner, rate_bin, batch_size, report_path, run):
     """Show what is in EVENTS (a Parquet file or a folder of them): the columns
     and their types, the embedded metadata, the events by kind (prompts,
     delayed), events with crystal ids outside the scanner, and the count rate
@@ -60,8 +62,9 @@ def inspect_command(events, scanner, rate_bin, batch_size, run):
         run.warn(f"{events} contains no events")
     if counts["invalid_crystal"]:
         run.warn(f"{counts['invalid_crystal']} events have crystal ids outside the scanner")
+    written = write_report(run, report_path, "report_for_events", events, scanner=scanner, inputs=[events])
     if run.as_json:
-        run.finish({"outputs": [], **info})
+        run.finish({"outputs": written, **info})
         return
     run.say(f"events: {info['events']}")
     for f in info["files"]:

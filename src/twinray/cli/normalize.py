@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _DEFAULT_BATCH = 1 << 20
 
@@ -30,9 +31,10 @@ _DEFAULT_BATCH = 1 << 20
               help="Alternations of the fan-sum and geometric-factor updates.")
 @click.option("--batch-size", type=click.IntRange(min=1), default=_DEFAULT_BATCH, show_default=True,
               help="Events decoded per batch; memory use grows with it, not with the scan length.")
+@report_option
 @common_options
 def normalize_command(normscan, output, scanner, rebin, source_shape, source_radius_mm, source_mu_per_cm,
-                      iterations, batch_size, run):
+                      iterations, batch_size, report_path, run):
     """Estimate crystal efficiencies (fan sums) and the geometric factors of
     every LOR from a normalization scan NORMSCAN (a Parquet file or folder),
     and write NORM.h5 with `crystal_efficiency` (per global crystal id, mean
@@ -82,7 +84,9 @@ def normalize_command(normscan, output, scanner, rebin, source_shape, source_rad
             run.say(f"  {name.replace('_', ' ')}: {value}")
     run.say(f"  crystal efficiency: mean 1, standard deviation {eff.std():.4f}, "
             f"range {eff.min():.3f} to {eff.max():.3f}")
-    run.finish({"outputs": [str(result.output)], "accounting": acc.to_dict(), "timings_s": result.timings_s,
+    written = write_report(run, report_path, "report_for_normalization", result.output, inputs=[normscan])
+    run.finish({"outputs": [str(result.output), *written], "accounting": acc.to_dict(),
+                "timings_s": result.timings_s,
                 "warnings": list(result.warnings),
                 "crystal_efficiency_std": float(eff.std()),
                 "normalization_source": {"shape": src.shape, "radius_mm": src.radius_mm,

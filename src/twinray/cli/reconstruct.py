@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _FILTERS = ["ramp", "shepp-logan", "cosine", "hamming", "hann"]
 
@@ -41,9 +42,10 @@ _FILTERS = ["ramp", "shepp-logan", "cosine", "hamming", "hann"]
               help="Calibration file from 'twinray calibrate': the image is written in Bq/mL.")
 @click.option("--calibration-factor", type=float, default=None, metavar="F",
               help="Bq/mL per counts/s/mL, given directly (instead of --calibration).")
+@report_option
 @common_options
 def reconstruct_command(sinogram, output, method, iterations, subsets, mode, filter_name, cutoff, matrix,
-                        voxel_mm, postfilter_mm, calibration, calibration_factor, run):
+                        voxel_mm, postfilter_mm, calibration, calibration_factor, report_path, run):
     """Reconstruct the sinogram file SINOGRAM into a NIfTI image.
 
     Geometry (view angles, radial positions, plane z, ring differences) comes
@@ -94,4 +96,5 @@ def reconstruct_command(sinogram, output, method, iterations, subsets, mode, fil
             else f"FBP, {filter_name} filter, cutoff {cutoff:g} x Nyquist")
     run.say(f"  {what}")
     run.say(f"  image {nx} x {ny} x {nz} voxels of {vx:.3g} x {vx:.3g} x {vz:.3g} mm, units {result['units']}")
-    run.finish(result)
+    written = write_report(run, report_path, "report_for_image", output, inputs=[sinogram, calibration])
+    run.finish({**result, "outputs": [*result["outputs"], *written]})

@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options
+from ._report import report_option, write_report
 from .dynamic import StageBars, build_options, correction_and_recon_options
 
 
@@ -33,12 +34,13 @@ from .dynamic import StageBars, build_options, correction_and_recon_options
               help="Region for the noise statistics (mm, scanner frame); repeat for more. Default: the object "
                    "(voxels above a quarter of the mean image's 99th percentile).")
 @correction_and_recon_options
+@report_option
 @common_options
 def resample_command(events, output_dir, replicates, mode, fraction_text, seed, frame, truncate, decay_reference,
                      rois, scanner, rebin,
                      norm_path, mu_path, randoms, singles_path, scatter, deadtime_ns, method, iterations, subsets,
                      filter_name, cutoff, matrix, voxel_mm, recon_mode, postfilter_mm, calibration,
-                     calibration_factor, workers, scheduler, batch_size, memory_gb, run):
+                     calibration_factor, workers, scheduler, batch_size, memory_gb, report_path, run):
     """Count-level noise study of the events in EVENTS: make resampled
     replicates in one streaming pass, correct and reconstruct every replicate
     with the same options (in parallel), and summarise the voxel-wise mean,
@@ -95,7 +97,9 @@ def resample_command(events, output_dir, replicates, mode, fraction_text, seed, 
         parts = ", ".join(f"{name} voxel CoV {stats['voxel_cov'] * 100:.1f} %, regional-mean CoV "
                           f"{stats['roi_mean_cov'] * 100:.2f} %" for name, stats in level["regions"].items())
         run.say(f"  P = {level['fraction']:g}: {level['mean_prompts']:.0f} prompts per replicate; {parts}")
-    run.finish({"outputs": [str(p) for p in result.outputs], "accounting": acc.to_dict(),
+    written = write_report(run, report_path, "report_for_resample", output_dir,
+                           inputs=[events, norm_path, mu_path, singles_path, calibration])
+    run.finish({"outputs": [*(str(p) for p in result.outputs), *written], "accounting": acc.to_dict(),
                 "timings_s": result.timings_s, "warnings": list(result.warnings),
                 "levels": [{"fraction": lv["fraction"], "mean_prompts": lv["mean_prompts"], "regions": lv["regions"]}
                            for lv in s["levels"]]})

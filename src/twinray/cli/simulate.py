@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _SWITCHES = ("attenuation", "scatter", "randoms", "delayed", "positron_range", "non_collinearity")
 
@@ -36,9 +37,11 @@ _SWITCHES = ("attenuation", "scatter", "randoms", "delayed", "positron_range", "
 @click.option("--efficiency-file", type=click.Path(path_type=Path), metavar="FILE",
               help="Crystal efficiencies (.npy, .txt, or a normalization .h5 with crystal_efficiency).")
 @click.option("--no-truth", is_flag=True, help="Write only the event file.")
+@report_option
 @common_options
 def simulate_command(phantom, output, scanner, duration, seed, start, chunk_s, attenuation, scatter, randoms,
-                     delayed, positron_range, non_collinearity, efficiency_spread, efficiency_file, no_truth, run):
+                     delayed, positron_range, non_collinearity, efficiency_spread, efficiency_file, no_truth,
+                     report_path, run):
     """Simulate a PET acquisition of PHANTOM.toml and write an event file.
 
     Decays are Poisson-sampled from the phantom's shapes (or voxel images)
@@ -83,8 +86,10 @@ def simulate_command(phantom, output, scanner, duration, seed, start, chunk_s, a
                           chunk_s=chunk_s, physics=physics, write_truth=not no_truth, on_chunk=bar.update)
     c = result.counts
     accounting = {k: c[k] for k in ("events_written", "prompts", "trues", "scatters", "randoms", "delayed")}
+    written = write_report(run, report_path, "report_for_events", result.events_path, inputs=[phantom])
     if run.as_json:
-        run.finish({"outputs": [str(p) for p in result.outputs], "accounting": accounting, "counts": c,
+        run.finish({"outputs": [*(str(p) for p in result.outputs), *written], "accounting": accounting,
+                    "counts": c,
                     "seed": result.seed, "duration_s": result.duration_s,
                     "timings_s": {"simulation": c["wall_s"]}})
         return

@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options, progress
+from ._report import report_option, write_report
 
 _DEFAULT_BATCH = 1 << 20
 
@@ -49,9 +50,10 @@ _DEFAULT_BATCH = 1 << 20
 @click.option("--decay-reference", type=click.Choice(["start", "injection"]), default="start", show_default=True,
               help="Time the stored decay_correction_factor refers to (injection needs injection_time in the "
                    "event metadata).")
+@report_option
 @common_options
 def sinogram_command(events, output, scanner, frame, rebin, batch_size, truncate, norm_path, mu_path, randoms,
-                     singles_path, scatter, deadtime_ns, deadtime_model, decay_reference, run):
+                     singles_path, scatter, deadtime_ns, deadtime_model, decay_reference, report_path, run):
     """Stream the coincidence events in EVENTS (a Parquet file or a folder of
     them, read in name order) into prompts and delayed sinograms, with the
     accounting of every event read.
@@ -116,7 +118,10 @@ def sinogram_command(events, output, scanner, frame, rebin, batch_size, truncate
                 f"attenuation {corr['attenuation']}, dead time {corr['deadtime_model']}")
         run.say(f"  randoms fraction {c.attrs['randoms_fraction']:.3f}, scatter fraction "
                 f"{c.attrs['scatter_fraction']:.3f}, decay correction factor {c.attrs['decay_correction_factor']:.5g}")
-    run.finish({"outputs": [str(result.output)], "accounting": acc.to_dict(), "timings_s": result.timings_s,
+    written = write_report(run, report_path, "report_for_sinogram", result.output, events_path=events,
+                           scanner=scanner, inputs=[events, norm_path, mu_path, singles_path])
+    run.finish({"outputs": [str(result.output), *written], "accounting": acc.to_dict(),
+                "timings_s": result.timings_s,
                 "warnings": list(result.warnings), "shape": list(g.shape),
                 "frame_start_s": c.frame_start_s, "frame_duration_s": c.frame_duration_s,
                 "event_files": [p.name for p in result.source.paths], "ignored": ignored})

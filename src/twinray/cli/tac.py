@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options
+from ._report import report_option, write_report
 
 
 @click.command("tac")
@@ -19,8 +20,9 @@ from ._common import common_options
 @click.option("--plot", "plot", type=click.Path(path_type=Path), default=None,
               help="PNG plot of the curves [default: the CSV name with .png].")
 @click.option("--no-plot", is_flag=True, help="Write the CSV only.")
+@report_option
 @common_options
-def tac(image4d, output, rois, plot, no_plot, run):
+def tac(image4d, output, rois, plot, no_plot, report_path, run):
     """Time-activity curves: mean, SD and voxel count of each region in each frame.
 
     IMAGE4D is a 4-D NIfTI (e.g. DIR/dynamic.nii.gz of `twinray dynamic`) whose
@@ -43,5 +45,6 @@ def tac(image4d, output, rois, plot, no_plot, run):
                 f"{curves.mean[r].max():.4g} {curves.units}".rstrip())
     for path in result["outputs"]:
         run.say(f"wrote {path}")
-    run.finish({"outputs": [str(p) for p in result["outputs"]],
+    written = write_report(run, report_path, "report_for_tac", output, units=curves.units, inputs=[image4d])
+    run.finish({"outputs": [*(str(p) for p in result["outputs"]), *written],
                 "regions": {region.name: int(curves.voxels[r]) for r, region in enumerate(curves.regions)}})
