@@ -528,10 +528,10 @@ def test_slices_mask_greys_out_voxels_outside():
 
 
 def test_every_command_offers_report():
-    """--report is in the help of every command that writes outputs (calibrate and demo excepted)."""
+    """--report is an option of every command (demo writes its report anyway)."""
     from twinray.cli.main import COMMANDS, cli
 
-    for name in sorted(set(COMMANDS) - {"demo", "calibrate"}):
+    for name in sorted(set(COMMANDS) - {"demo"}):
         command = cli.get_command(None, name)
         assert any("--report" in p.opts for p in command.params), name
 
@@ -552,3 +552,17 @@ def test_tac_command_writes_its_report(tmp_path):
     assert code == 0
     assert str(tmp_path / "tac.html") in json.loads(out.getvalue())["outputs"]
     _check_report(tmp_path / "tac.html", ["Time-activity curves: tac.csv"])
+
+
+def test_report_for_calibration(tmp_path):
+    from twinray.report import report_for_calibration
+
+    image = _write_image(tmp_path / "cyl.nii.gz", _phantom(), {"Units": "counts/s/mL"})
+    cal = tmp_path / "cal.json"
+    cal.write_text(json.dumps({"bq_per_ml_per_unit": 11867.75, "roi_voxels": 2808, "reference_time": None}))
+    parser, images = _check_report(report_for_calibration(cal, tmp_path / "cal.html", image_path=image,
+                                                          inputs=[image]), ["Calibration: cal.json"])
+    assert len(images) == 1 and "11,868" in " ".join(parser.text)
+    (tmp_path / "bad.json").write_text("[1, 2")
+    with pytest.raises(TwinrayInputError, match="not valid JSON"):
+        report_for_calibration(tmp_path / "bad.json", tmp_path / "x.html")

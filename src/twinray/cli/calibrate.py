@@ -7,6 +7,7 @@ from pathlib import Path
 import click
 
 from ._common import common_options
+from ._report import report_option, write_report
 
 
 @click.command("calibrate")
@@ -28,9 +29,10 @@ from ._common import common_options
                    "found from the image.")
 @click.option("--edge-slices", type=click.IntRange(min=0), default=1, show_default=True,
               help="Slices left out at each axial end of the image.")
+@report_option
 @common_options
 def calibrate_command(image, output, concentration, reference_time, acquisition_start, isotope,
-                      roi_radius_mm, edge_slices, run):
+                      roi_radius_mm, edge_slices, report_path, run):
     """Derive the calibration factor (Bq/mL per counts/s/mL) from IMAGE, a
     reconstruction of a uniform cylinder of known activity concentration.
 
@@ -56,4 +58,5 @@ def calibrate_command(image, output, concentration, reference_time, acquisition_
     run.say(f"  central region: mean {cal.roi_mean:.6g} +- {cal.roi_std:.3g} ({cal.roi_voxels} voxels, "
             f"radius {cal.roi_radius_mm:.3g} mm of a {cal.object_radius_mm:.3g} mm object)")
     run.say(f"  expected {cal.expected_image_bq_per_ml:.6g} Bq/mL in the image")
-    run.finish({"outputs": [str(written)], "accounting": None, "calibration": cal.to_dict()})
+    report = write_report(run, report_path, "report_for_calibration", written, image_path=image, inputs=[image])
+    run.finish({"outputs": [str(written), *report], "accounting": None, "calibration": cal.to_dict()})

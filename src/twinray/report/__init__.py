@@ -10,8 +10,8 @@
 """
 
 from .builder import Report, format_value
-from .per_command import (report_for_dynamic, report_for_events, report_for_image, report_for_normalization,
-                          report_for_resample, report_for_sinogram, report_for_tac)
+from .per_command import (report_for_calibration, report_for_dynamic, report_for_events, report_for_image,
+                          report_for_normalization, report_for_resample, report_for_sinogram, report_for_tac)
 from .provenance import provenance, sha256_file
 
 __all__ = [
@@ -26,4 +26,5 @@ __all__ = [
     "report_for_dynamic",
     "report_for_tac",
     "report_for_resample",
+    "report_for_calibration",
 ]

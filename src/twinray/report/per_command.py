@@ -156,3 +156,13 @@ def report_for_resample(output_dir, report_path, *, command: str = "", options=N
     rep = Report(f"Noise study {Path(output_dir).name}", _subtitle("twinray resample"))
     sections.add_resample_sections(rep, output_dir)
     return _finish(rep, report_path, command, options, inputs)
+
+
+def report_for_calibration(calibration_json, report_path, *, image_path=None, command: str = "", options=None,
+                           inputs=()) -> Path:
+    """Report of ``twinray calibrate``: the factor and, when given, the cylinder image it came from."""
+    rep = Report(f"Calibration {Path(calibration_json).name}", _subtitle("twinray calibrate"))
+    sections.add_calibration_sections(rep, calibration_json)
+    if image_path is not None:
+        sections.add_image_sections(rep, image_path, label=f"Cylinder image: {Path(image_path).name}")
+    return _finish(rep, report_path, command, options, inputs)

@@ -698,3 +698,18 @@ def add_recovery_sections(report: Report, images: dict, truth_path, regions, uni
     report.paragraph("A ratio of 1 is full recovery. Small hot regions read low (partial-volume effect: the "
                      "image resolution spreads their activity outwards); cold regions read above zero for the same "
                      "reason and from residual scatter. Both shrink as regions grow.")
+
+
+def add_calibration_sections(report: Report, calibration_json) -> None:
+    """The facts of a calibration file written by ``twinray calibrate``."""
+    path = Path(calibration_json)
+    try:
+        cal = json.loads(path.read_text())
+    except (OSError, json.JSONDecodeError):
+        raise TwinrayInputError(f"calibration file {path} is missing or not valid JSON") from None
+    if not isinstance(cal, dict):
+        raise TwinrayInputError(f"calibration file {path} does not hold a JSON object")
+    report.heading(f"Calibration: {path.name}")
+    report.key_values({k.replace("_", " "): v for k, v in cal.items()
+                       if isinstance(v, (int, float, str, bool)) or v is None},
+                      caption="Calibration factor and the region it was measured in")
