@@ -274,7 +274,7 @@ def test_non_collinearity_blur_at_centre():
     out = K.detect_pairs(state_from_seed(9), zeros, zeros.copy(), zeros.copy(), zeros.copy(), 0, empty,
                          np.zeros((0, 8)), np.zeros(0), np.zeros((1, 1, 1)), np.zeros(3), np.ones(3),
                          np.array([1.0, 0.0, 1.0, 0.0]), radius, 50.0, 1.0, 100, n_crystals, 0.0,
-                         False, False, K_SIGMA, np.ones(100 * n_crystals), 0.0, 0.0, 1e9, 0.0, 1.0)
+                         False, False, K_SIGMA, np.ones(100 * n_crystals), 0.0, 0.0, 1e9, 0.0, 0.0, 1.0)
     ja = out[1] % n_crystals
     jb = out[2] % n_crystals
     angle = 2 * np.pi / n_crystals
@@ -538,7 +538,7 @@ def test_emission_points_uniform_in_shapes():
     n = 200_000
     xs, ys, zs, ts, which = K.emit_from_shapes(
         state_from_seed(3), kinds, params, np.array([n, 0, n], dtype=np.int64), np.ones(3), np.zeros((3, 1)), np.zeros((3, 1)),
-        np.zeros(3, dtype=np.int64), 1e-4, 0.0, 1.0, 0.0)
+        np.zeros(3, dtype=np.int64), 1e-4, 0.0, 1.0, 0.0, 0.0)
     e = which == 2
     assert e.sum() > 0.99 * n
     dx, dy = xs[e] - 85.0, ys[e] + 3.0

@@ -431,7 +431,7 @@ def _decay_time(rng, t0_s, dt_s, decay_constant, em1):
 
 @njit(cache=True)
 def emit_from_shapes(rng, kinds, params, counts, envelope, tac_times, tac_values, tac_len,
-                     decay_constant, t0_s, dt_s, range_mean_mm):
+                     decay_constant, t0_s, dt_s, range_mean_mm, range_min_mm):
     """Annihilation points of one time step for an analytic phantom.
 
     For each shape, ``counts[s]`` candidates (a Poisson number drawn by the
@@ -442,6 +442,8 @@ def emit_from_shapes(rng, kinds, params, counts, envelope, tac_times, tac_values
     step exactly (inverse CDF); with a curve the time is uniform and the
     candidate is kept with probability ``tac(t) exp(-lambda t) / envelope[s]``
     (thinning of an inhomogeneous Poisson process, Lewis & Shedler 1979).
+    Positron ranges are ``range_min_mm`` plus an exponential of mean
+    ``range_mean_mm`` (the caller's split of the exponential at a threshold).
 
     Returns x, y, z (mm), t (s), shape index.
     """
@@ -499,7 +501,7 @@ def emit_from_shapes(rng, kinds, params, counts, envelope, tac_times, tac_values
             ts[k] = t
             which[k] = s
             k += 1
-    _positron_range(rng, xs, ys, zs, k, range_mean_mm)
+    _positron_range(rng, xs, ys, zs, k, range_mean_mm, range_min_mm)
     return xs[:k], ys[:k], zs[:k], ts[:k], which[:k]
 
 
@@ -531,17 +533,18 @@ def emit_from_voxels(rng, cdf, shape, origin, voxel, count, decay_constant, t0_s
         xs[k] = origin[0] + (ix + uniform(rng) - 0.5) * voxel[0]
         ys[k] = origin[1] + (iy + uniform(rng) - 0.5) * voxel[1]
         zs[k] = origin[2] + (iz + uniform(rng) - 0.5) * voxel[2]
-    _positron_range(rng, xs, ys, zs, n, range_mean_mm)
+    _positron_range(rng, xs, ys, zs, n, range_mean_mm, 0.0)
     return xs, ys, zs, ts, np.zeros(n, dtype=np.int32)
 
 
 @njit(cache=True)
-def _positron_range(rng, xs, ys, zs, n, mean_mm):
-    """Displace annihilation points isotropically by an exponential distance of mean ``mean_mm``."""
+def _positron_range(rng, xs, ys, zs, n, mean_mm, min_mm):
+    """Displace annihilation points isotropically by ``min_mm`` plus an exponential distance of
+    mean ``mean_mm`` (min_mm = 0: the plain model; > 0: the tail beyond min_mm, memoryless)."""
     if mean_mm <= 0.0:
         return
     for i in range(n):
-        r = mean_mm * exponential(rng)
+        r = min_mm + mean_mm * exponential(rng)
         ux, uy, uz = isotropic(rng)
         xs[i] += r * ux
         ys[i] += r * uy
@@ -563,13 +566,13 @@ def _cos_small(x):
 def detect_pairs(rng, xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, voxel, bound,
                  radius, half_length, pitch, rings, crystals_per_ring, angle_offset,
                  attenuate, scatter, noncollinearity_sigma_rad, detection_probability,
-                 energy_sigma_511_kev, lld_kev, uld_kev, tof_sigma_ps, cone):
+                 energy_sigma_511_kev, lld_kev, uld_kev, tof_sigma_ps, cos_lo, cos_hi):
     """Send a back-to-back photon pair from every annihilation point.
 
-    ``bound`` is the attenuation bound of :func:`depth_bound`. ``cone`` is
-    the largest |cos| of the first photon's polar angle: 1 for isotropic
-    pairs; below 1 the directions are isotropic restricted to that cone
-    (z uniform on [-cone, cone]), for the caller's Poisson thinning. Returns the
+    ``bound`` is the attenuation bound of :func:`depth_bound`. The first
+    photon's |cos| of polar angle is uniform on [cos_lo, cos_hi] with a
+    random sign: isotropic for (0, 1), isotropic restricted to a cone or to
+    its outside for the caller's Poisson split. Returns the
     coincidences (time_ns, crystal_a, crystal_b, tof_ps, energy_a_kev,
     energy_b_kev, kind), the singles (crystal, energy_kev) of every photon
     detected, and the counters.
@@ -607,8 +610,11 @@ def detect_pairs(rng, xs, ys, zs, ts, mode, kinds, params, mus, grid, origin, vo
         px = xs[i]
         py = ys[i]
         pz = zs[i]
-        if cone < 1.0:
-            dz = cone * (2.0 * uniform(rng) - 1.0)
+        if cos_lo > 0.0 or cos_hi < 1.0:
+            w = 2.0 * uniform(rng) - 1.0
+            dz = cos_lo + (cos_hi - cos_lo) * abs(w)
+            if w < 0.0:
+                dz = -dz
             cos_phi, sin_phi = azimuth(rng)
             sz = math.sqrt(1.0 - dz * dz)
             dx = sz * cos_phi

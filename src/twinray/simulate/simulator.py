@@ -413,8 +413,9 @@ def _peak_candidate_rate(src: _Source, pf: float) -> float:
     return rate
 
 
-#: Largest value of the kernels' exponential(1) sampler, -ln(1 - u) with u <= 1 - 2**-53.
-EXPONENTIAL_MAX = 53.0 * math.log(2.0)
+#: Positron ranges beyond this many mean ranges are split off and followed in every direction,
+#: so that the detection cone needs only this margin (probability exp(-5) = 0.7 % per decay).
+RANGE_MARGIN_MEANS = 5.0
 #: Largest radius sqrt(g1^2 + g2^2) of a polar-method normal pair (u, v multiples of 2**-52,
 #: so s = u^2 + v^2 >= 2**-104): sqrt(-2 ln 2**-104).
 NORMAL_PAIR_MAX = math.sqrt(2.0 * 104.0 * math.log(2.0))
@@ -444,9 +445,10 @@ def detection_cone(src: _Source, scanner: Scanner, physics: PhysicsOptions, rang
     whose cos is uniform) and follows only those inside. A photon from in-plane radius
     r <= r_e travels at least R - r_e in-plane, hence at least (R - r_e) tan(elevation)
     axially, and misses the ring when that exceeds L/2 + |z|max. The emission region is
-    widened by the largest positron displacement the sampler can draw (EXPONENTIAL_MAX
-    mean ranges) and the elevation by the largest non-collinearity tilt it can draw
-    (NORMAL_PAIR_MAX sigma), so the cut is exact for the generator, not just probable.
+    widened by RANGE_MARGIN_MEANS mean positron ranges (the decays outside the cone with a
+    longer range are split off again and followed, see :func:`simulate_step`) and the
+    elevation by the largest non-collinearity tilt the sampler can draw (NORMAL_PAIR_MAX
+    sigma), so the cut is exact for the generator, not just probable.
     Returns 1 (no cut) for voxel phantoms, with attenuation, or when the region reaches
     the ring.
     """
@@ -460,7 +462,7 @@ def detection_cone(src: _Source, scanner: Scanner, physics: PhysicsOptions, rang
         half = math.hypot(a, b) if kind == K.BOX else max(a, b)
         reach = max(reach, math.hypot(cx, cy) + half)
         z_max = max(z_max, abs(cz - c), abs(cz + c))
-    margin = EXPONENTIAL_MAX * range_mm * (1.0 + 1e-9) + 1e-6
+    margin = RANGE_MARGIN_MEANS * range_mm * (1.0 + 1e-9) + 1e-6
     reach += margin
     z_max += margin
     if reach >= scanner.radius_mm:
@@ -488,6 +490,7 @@ def simulate_step(src: _Source, scanner: Scanner, physics: PhysicsOptions, setti
     rng = state_from_seed(np.random.SeedSequence(seed, spawn_key=(0, k, 1)))
     lam, pf, dt = settings.lam, settings.positron_fraction, t1 - t0
     n_outside = 0
+    far = None
     if src.voxel_cdf is not None:
         n_emit = int(counts_rng.poisson(src.voxel_total_bq * pf * _decay_integral_s(lam, t0, t1)))
         xs, ys, zs, ts, _ = K.emit_from_voxels(
@@ -500,6 +503,11 @@ def simulate_step(src: _Source, scanner: Scanner, physics: PhysicsOptions, setti
             inside = counts_rng.binomial(counts, settings.cone).astype(np.int64)
             outside = counts - inside
             counts = inside
+            if settings.range_mm > 0.0:
+                # outside the cone, positron ranges beyond the cone's margin may still reach the
+                # ring: that tail (exponential, memoryless) is split off and followed
+                far = counts_rng.binomial(outside, math.exp(-RANGE_MARGIN_MEANS)).astype(np.int64)
+                outside = outside - far
             # outside the cone nothing is detected; only the annihilation count is
             # needed, and it needs the thinning (replacement, time-activity curve) only
             # where a later shape or a curve can reject a candidate
@@ -507,19 +515,33 @@ def simulate_step(src: _Source, scanner: Scanner, physics: PhysicsOptions, setti
             n_outside = int(outside[~thinned].sum())
             if np.any(outside[thinned] > 0):
                 kept = K.emit_from_shapes(rng, src.kinds, src.params, np.where(thinned, outside, 0), env,
-                                          src.tac_times, src.tac_values, src.tac_len, lam, t0, dt, 0.0)[0]
+                                          src.tac_times, src.tac_values, src.tac_len, lam, t0, dt, 0.0, 0.0)[0]
                 n_outside += len(kept)
         xs, ys, zs, ts, _ = K.emit_from_shapes(
             rng, src.kinds, src.params, counts, env, src.tac_times, src.tac_values, src.tac_len,
-            lam, t0, dt, settings.range_mm)
-    (c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind, s_crystal, s_energy, ctr) = K.detect_pairs(
-        rng, xs, ys, zs, ts, src.mode, src.kinds, src.params, src.mus, src.grid, src.origin, src.voxel,
-        src.bound, scanner.radius_mm, 0.5 * scanner.axial_length_mm, scanner.axial_pitch_mm, scanner.rings,
-        scanner.crystals_per_ring, scanner.angle_offset_rad, physics.attenuation, physics.scatter,
-        settings.noncollinearity_sigma_rad, detection_probability, settings.energy_sigma_kev, physics.lld_kev,
-        physics.uld_kev, scanner.tof_fwhm_ps * FWHM_TO_SIGMA, settings.cone)
+            lam, t0, dt, settings.range_mm, 0.0)
+    groups = [((xs, ys, zs, ts), 0.0, settings.cone)]
+    if far is not None:
+        points = K.emit_from_shapes(rng, src.kinds, src.params, far, env, src.tac_times, src.tac_values,
+                                    src.tac_len, lam, t0, dt, settings.range_mm,
+                                    RANGE_MARGIN_MEANS * settings.range_mm)[:4]
+        groups.append((points, settings.cone, 1.0))
+    parts = []
+    singles = []
+    ctr = np.zeros(K.N_COUNTERS, dtype=np.int64)
+    for (gx, gy, gz, gt), cos_lo, cos_hi in groups:
+        (c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind, g_crystal, g_energy, g_ctr) = K.detect_pairs(
+            rng, gx, gy, gz, gt, src.mode, src.kinds, src.params, src.mus, src.grid, src.origin, src.voxel,
+            src.bound, scanner.radius_mm, 0.5 * scanner.axial_length_mm, scanner.axial_pitch_mm, scanner.rings,
+            scanner.crystals_per_ring, scanner.angle_offset_rad, physics.attenuation, physics.scatter,
+            settings.noncollinearity_sigma_rad, detection_probability, settings.energy_sigma_kev,
+            physics.lld_kev, physics.uld_kev, scanner.tof_fwhm_ps * FWHM_TO_SIGMA, cos_lo, cos_hi)
+        parts.append((c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind))
+        singles.append((g_crystal, g_energy))
+        ctr += g_ctr
+    s_crystal = np.concatenate([g[0] for g in singles])
+    s_energy = np.concatenate([g[1] for g in singles])
     ctr[K.N_ANNIHILATIONS] += n_outside
-    parts = [(c_time, c_a, c_b, c_tof, c_ea, c_eb, c_kind)]
     expected = [0.0, 0.0]
     for i, (kind, wanted) in enumerate(((K.RANDOM, physics.randoms), (3, physics.delayed))):
         if not wanted:
