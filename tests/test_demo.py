@@ -73,6 +73,15 @@ def test_find_demo_data_order(tmp_path, monkeypatch):
         demo.find_demo_data(manifest, given)
     monkeypatch.setattr(demo, "source_tree_data_dir", lambda: tmp_path / "no-tree")
     monkeypatch.delenv("TWINRAY_DEMO_DATA", raising=False)
+    monkeypatch.chdir(tmp_path)
+    assert demo.find_demo_data(manifest) == (None, None)
+    # An installed package run from a checkout's root finds ./simulated_events.
+    here = tmp_path / "simulated_events"
+    here.mkdir()
+    for n in names:
+        (here / n).write_bytes(b"x")
+    assert demo.find_demo_data(manifest)[0] == here
+    (here / names[1]).unlink()
     assert demo.find_demo_data(manifest) == (None, None)
     (given / names[0]).write_bytes(b"x")
     monkeypatch.setenv("TWINRAY_DEMO_DATA", str(given))

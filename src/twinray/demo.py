@@ -140,6 +140,10 @@ def find_demo_data(manifest: dict, data_dir=None) -> tuple:
     tree = source_tree_data_dir()
     if _complete(tree, manifest):
         return tree, "source checkout"
+    # A non-editable install run from the repository root (as the README does).
+    here = Path.cwd() / "simulated_events"
+    if here.resolve() != tree.resolve() and _complete(here, manifest):
+        return here, "simulated_events/ in the current folder"
     return None, None
 
 
