@@ -307,6 +307,14 @@ def expected_relative_noise(counts) -> np.ndarray:
     return np.divide(1.0, np.sqrt(counts), out=np.full_like(counts, np.nan), where=counts > 0)
 
 
+def _smoothed(image: np.ndarray, sigma_voxels: float = 1.5) -> np.ndarray:
+    """Gaussian-smoothed copy of an image (transaxially, and along z when it has several slices)."""
+    from scipy.ndimage import gaussian_filter
+
+    sigma = [sigma_voxels, sigma_voxels] + [sigma_voxels if image.shape[2] > 1 else 0.0] * (image.ndim - 2)
+    return gaussian_filter(np.asarray(image, dtype=np.float64), sigma=sigma, mode="constant")
+
+
 def _region_masks(regions, shape, affine, mean_image):
     """Named boolean masks: the given spheres, or one "object" region from the mean image."""
     from .tac import region_mask
@@ -326,7 +334,7 @@ def _region_masks(regions, shape, affine, mean_image):
     mask = mean_image > level if level > 0 else np.zeros(mean_image.shape, bool)
     if not mask.any():
         raise TwinrayInputError("the mean image is zero everywhere; no region to measure noise in")
-    return {"object": mask}, [{"name": "object", "definition": "mean image > 0.25 x its 99th percentile",
+    return {"object": mask}, [{"name": "object", "definition": "smoothed mean image of the largest fraction > 0.25 x its 99th percentile",
                                "voxels": int(mask.sum())}]
 
 
@@ -587,15 +595,17 @@ def make_resample(events, output_dir, *, mode: str = "bootstrap", replicates: in
     units = first_side.get("Units", "")
 
     means, stds, covs, levels = [], [], [], []
-    masks = region_info = None
     for p in fractions:
-        sel = state.fractions == p
-        mean, std, cov = voxel_statistics(images[sel])
+        mean, std, cov = voxel_statistics(images[state.fractions == p])
         means.append(mean)
         stds.append(std)
         covs.append(cov)
-        if masks is None:
-            masks, region_info = _region_masks(list(regions), mean.shape, affine, mean)
+    # The object region comes from the least noisy mean image (the largest fraction), smoothed:
+    # a threshold on a noisy image selects voxels that happen to be high and biases their mean up.
+    support = _smoothed(means[int(np.argmax(fractions))])
+    masks, region_info = _region_masks(list(regions), support.shape, affine, support)
+    for p in fractions:
+        sel = state.fractions == p
         totals = state.totals[sel]
         levels.append({
             "fraction": p,
