@@ -296,7 +296,7 @@ def depth_bound(b_radius, b_zc, b_half_z, b_mu, px, py, pz, dx, dy, dz, t_end):
     return 0.1 * b_mu * (hi - lo) * (1.0 + 1e-9) + 1e-12
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def interact_photon(rng, mode, kinds, params, mus, grid, origin, voxel, bound, depth, t_hit,
                     px, py, pz, dx, dy, dz, radius, half_length, scatter, seg_t, seg_mu, t_in, t_out):
     """The rest of :func:`transport_photon` for a photon whose exponential optical depth
