@@ -130,7 +130,8 @@ def write_sinogram_file(path, arrays: dict, geometry: SinogramGeometry, *, frame
     return path
 
 
-def _decode_attr(value):
+def decode_attribute(value):
+    """An HDF5 attribute as Python: JSON strings decoded, bytes as text, 0-d arrays as scalars."""
     if isinstance(value, bytes):
         value = value.decode()
     if isinstance(value, str):
@@ -138,7 +139,12 @@ def _decode_attr(value):
             return json.loads(value)
         except json.JSONDecodeError:
             return value
+    if isinstance(value, np.ndarray) and value.ndim == 0:
+        return value.item()
     return value
+
+
+_decode_attr = decode_attribute
 
 
 def geometry_from_attrs(attrs: dict, where: str) -> SinogramGeometry:

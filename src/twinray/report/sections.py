@@ -19,6 +19,7 @@ import numpy as np
 from ..errors import TwinrayInputError
 from . import figures
 from .builder import Report
+from ..sinogram_io import decode_attribute
 
 TAC_COLUMNS = ("region", "frame", "start_s", "duration_s", "mid_s", "mean", "std", "voxels")
 _GEOMETRY_ATTRS = ("view_angles_rad", "radial_positions_mm", "plane_z_mm", "plane_ring_difference",
@@ -31,17 +32,7 @@ _SIDECAR_KEYS = ("Units", "TracerRadionuclide", "ReconMethodName", "ReconMethodP
                  "ImageDecayCorrected", "ImageDecayCorrectionTime")
 
 
-def _decode(value):
-    if isinstance(value, bytes):
-        value = value.decode()
-    if isinstance(value, str):
-        try:
-            return json.loads(value)
-        except json.JSONDecodeError:
-            return value
-    if isinstance(value, np.ndarray) and value.size == 1 and value.ndim == 0:
-        return value.item()
-    return value
+_decode = decode_attribute
 
 
 def _scanner_facts(scanner) -> dict:
