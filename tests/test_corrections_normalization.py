@@ -132,6 +132,12 @@ def test_norm_file_round_trip_and_geometry_refusal(tmp_path):
         read_norm_file(tmp_path / "norm.h5", other)
     with pytest.raises(TwinrayInputError, match="another sinogram geometry"):
         read_norm_file(tmp_path / "norm.h5", sinogram_geometry(g.scanner, "ssrb"))
+    # A corrected sinogram file also has a `norm` dataset, but it is not a normalization file
+    # (data contract s.3: crystal_efficiency and norm).
+    from twinray.sinogram_io import write_sinogram_file
+    write_sinogram_file(tmp_path / "sino.h5", {"prompts": np.zeros(g.shape, np.int32), "norm": f.arrays["norm"]}, g)
+    with pytest.raises(TwinrayInputError, match="not a normalization file"):
+        read_norm_file(tmp_path / "sino.h5", g)
     # A scan without normalization_source metadata is refused.
     del meta["normalization_source"]
     plain = write_events(tmp_path / "plain.parquet", cols, meta)

@@ -518,6 +518,11 @@ def read_norm_file(path, geometry: SinogramGeometry) -> np.ndarray:
     f = read_sinogram_file(path, datasets=("norm", "crystal_efficiency"))
     if "norm" not in f.arrays:
         raise TwinrayInputError(f"normalization file {path} has no 'norm' dataset")
+    if "crystal_efficiency" not in f.arrays:
+        # Data contract s.3: a normalization file has crystal_efficiency and norm; a corrected
+        # sinogram file also holds a `norm` dataset but is not one.
+        raise TwinrayInputError(f"{path} is not a normalization file (no 'crystal_efficiency' dataset); "
+                                "make one with twinray normalize")
     other = f.geometry
     if not (other.same_layout(geometry) and _same_crystals(other, geometry)):
         raise TwinrayInputError(
