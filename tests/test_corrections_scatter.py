@@ -60,3 +60,13 @@ def test_object_filling_the_field_of_view_reports_missing_planes():
     full = np.full(g.shape, 2.0)  # every LOR crosses the object: no tails
     _, notes = estimate_scatter("tail-fit", trues, np.ones(g.shape), full, g)
     assert notes and "no tails" in notes[0]
+
+
+def test_scatter_is_never_negative_when_the_tails_are_empty():
+    """A scatter expectation is non-negative (it is a count rate); tails holding only sparse
+    Poisson counts around zero must not give negative amplitudes."""
+    g, acf, trues, _ = setup()
+    rng = np.random.default_rng(2)
+    emission = rng.poisson(0.02 * trues + 0.01).astype(float)  # nearly empty tails
+    fit, _ = tail_fit_scatter(emission, np.ones(g.shape), acf, g)
+    assert np.all(fit >= 0.0)

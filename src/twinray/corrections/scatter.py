@@ -140,6 +140,9 @@ def _fit_plane(y, acf, s, options: TailFitOptions):
         amp = np.interp(idx, idx[enough], amp[enough])
     if options.view_smoothing > 1 and views > options.view_smoothing:
         amp = ndimage.uniform_filter1d(amp, options.view_smoothing, mode="nearest")
+    # A scatter expectation cannot be negative; noisy tails near zero can give a slightly
+    # negative least-squares amplitude (seen as -6e-17 counts, enough to upset the Poisson model).
+    amp = np.maximum(amp, 0.0)
     return amp[:, None] * shape, tails, True
 
 
