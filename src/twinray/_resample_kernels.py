@@ -88,6 +88,15 @@ def _poisson1(u, cdf):
     return k
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _weight(key, row, thin, fraction, cdf):
+    """Weight of event ``row`` in one stream: Bernoulli(fraction) when thinning, else Poisson(1)."""
+    u = _uniform(key, row)
+    if thin:
+        return np.int32(u < fraction)
+    return np.int32(_poisson1(u, cdf))
+
+
 @njit(cache=True, nogil=True)
 def event_weights(keys, first_row, n_rows, mode, fractions, cdf, out):
     """Weights of rows ``first_row .. first_row + n_rows - 1`` in every stream.
@@ -99,55 +108,7 @@ def event_weights(keys, first_row, n_rows, mode, fractions, cdf, out):
     for i in range(n_rows):
         row = first_row + i
         for r in range(n_streams):
-            u = _uniform(keys[r], row)
-            if mode == 0:
-                out[i, r] = _poisson1(u, cdf)
-            else:
-                out[i, r] = 1 if u < fractions[r] else 0
-
-
-@njit(cache=True, nogil=True)
-def accumulate_weighted(codes, first_row, keys, mode, fractions, cdf, prompts, delayed, totals):
-    """Add every binned event, with its weight per stream, to the replicate sinograms.
-
-    Parameters
-    ----------
-    codes : int64 array
-        Codes of :func:`twinray._binning_kernels.classify_batch` (frame 0
-        only): ``flat_bin << 1 | is_delayed``, or negative when rejected.
-    first_row : int
-        Global row index of ``codes[0]``.
-    keys : uint64 array, shape (n_streams,)
-    mode : int
-        0: Poisson(1) weights (bootstrap); 1: Bernoulli(fraction) (thinning).
-    fractions : float64 array, shape (n_streams,)
-    cdf : float64 array
-        Poisson(1) CDF table.
-    prompts, delayed : int32 arrays, shape (n_bins * n_streams,)
-        Bin-major layout (all streams of a bin side by side), so one event
-        touches one cache line whatever the number of replicates.
-    totals : int64 array, shape (n_streams, 2)
-        Sum of weights of prompts and delayed per stream.
-    """
-    n_streams = keys.shape[0]
-    thin = mode != 0
-    for i in range(codes.shape[0]):
-        c = codes[i]
-        if c < 0:
-            continue
-        row = first_row + i
-        base = (c >> 1) * n_streams
-        is_delayed = c & 1
-        target = delayed if is_delayed else prompts
-        # No branch on the weight itself: zero weights are added like any other.
-        for r in range(n_streams):
-            u = _uniform(keys[r], row)
-            if thin:
-                w = np.int32(u < fractions[r])
-            else:
-                w = np.int32(_poisson1(u, cdf))
-            target[base + r] += w
-            totals[r, is_delayed] += w
+            out[i, r] = _weight(keys[r], row, mode != 0, fractions[r], cdf)
 
 
 @njit(cache=True, nogil=True)
@@ -180,7 +141,15 @@ def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes,
 
 @njit(cache=True, nogil=True)
 def accumulate_weighted_rows(codes, rows, count, keys, mode, fractions, cdf, prompts, delayed, totals):
-    """:func:`accumulate_weighted` for codes already partitioned, each with its global row index."""
+    """Add partitioned binned codes, each with its global row index, with their weight per stream.
+
+    ``codes``/``rows`` come from :func:`partition_codes` (``count`` of them);
+    ``prompts``/``delayed`` are int32 arrays of shape (n_bins * n_streams,),
+    bin-major (all streams of a bin side by side, so one event touches one
+    cache line whatever the number of replicates); ``totals`` (n_streams, 2)
+    collects the sums of weights of prompts and delayed; ``mode`` 0 draws
+    Poisson(1) weights (bootstrap), 1 Bernoulli(fraction) (thinning).
+    """
     n_streams = keys.shape[0]
     thin = mode != 0
     for i in range(count):
@@ -189,12 +158,9 @@ def accumulate_weighted_rows(codes, rows, count, keys, mode, fractions, cdf, pro
         base = (c >> 1) * n_streams
         is_delayed = c & 1
         target = delayed if is_delayed else prompts
+        # No branch on the weight itself: zero weights are added like any other.
         for r in range(n_streams):
-            u = _uniform(keys[r], row)
-            if thin:
-                w = np.int32(u < fractions[r])
-            else:
-                w = np.int32(_poisson1(u, cdf))
+            w = _weight(keys[r], row, thin, fractions[r], cdf)
             target[base + r] += w
             totals[r, is_delayed] += w
 
