@@ -26,34 +26,8 @@ from twinray.simulate.simulator import simulate
 from twinray.sinogram import make_sinogram
 from twinray.sinogram_io import read_sinogram_file
 
-SCANNER = """
-name = "test-4r96-ssrb"
-rings = 4
-crystals_per_ring = 96
-radius_mm = 70.0
-axial_pitch_mm = 4.0
-coincidence_window_ns = 6.0
-energy_window_kev = [425.0, 650.0]
-[sinogram]
-radial_bins = 63
-"""
-
-PHANTOM = """
-name = "{name}"
-isotope = "F-18"
-scanner = "scanner.toml"
-duration_s = {duration}
-acquisition_start = "2026-03-01T18:00:00+00:00"
-{extra}
-{physics}
-[[shape]]
-name = "water"
-type = "cylinder"
-radius_mm = {radius}
-length_mm = 16.0
-activity_bq_per_ml = {activity}
-mu_per_cm = 0.096
-"""
+# The same 4-ring scanner and water-cylinder phantom template as the other simulated checks.
+from test_corrections_simulated import PHANTOM, SCANNER  # noqa: E402
 
 RADIUS = 30.0
 
@@ -63,11 +37,11 @@ def scans(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("ssrb")
     (tmp / "scanner.toml").write_text(SCANNER)
     (tmp / "norm.toml").write_text(PHANTOM.format(
-        name="norm cylinder", duration=5.0, radius=50.0, activity=20000.0, physics="",
+        name="norm cylinder", duration=5.0, radius=50.0, activity=20000.0,
         extra='normalization_source = { shape = "cylinder", radius_mm = 50.0, mu_per_cm = 0.096 }'))
     (tmp / "scan.toml").write_text(PHANTOM.format(name="water cylinder", duration=2.0, radius=RADIUS,
-                                                  activity=90000.0, extra="",
-                                                  physics="[physics]\nscatter = false"))
+                                                  activity=90000.0,
+                                                  extra="[physics]\nscatter = false"))
     simulate(load_phantom(tmp / "norm.toml"), tmp / "norm.parquet", seed=21)
     simulate(load_phantom(tmp / "scan.toml"), tmp / "scan.parquet", seed=22)
     out = {}
