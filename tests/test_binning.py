@@ -22,7 +22,8 @@ from hypothesis import strategies as st
 
 from conftest import event_metadata, make_small_scanner, point_source_events, random_events
 from twinray.accounting import FIELDS, Accounting
-from twinray.binning import BinningState, bin_event_arrays, bin_events, empty_state, seconds_to_ns
+from twinray.binning import (BinningState, bin_event_arrays, bin_events, empty_state, seconds_to_ns,
+                             sinograms_from_codes)
 from twinray.errors import TwinrayInputError
 from twinray.event_writer import write_events
 from twinray.geometry import sinogram_geometry
@@ -357,3 +358,42 @@ def test_table_that_does_not_factor_falls_back(rng, monkeypatch):
     prompts, delayed, counts = reference_bin(cols, GEOMETRY, None, SCANNER.energy_window_kev)
     np.testing.assert_array_equal(state.prompts, prompts)
     np.testing.assert_array_equal(state.counts, counts)
+
+
+@SETTINGS
+@given(spec=EVENTS, frames=FRAMES, limit=st.integers(0, 40), cut=st.floats(0, 1))
+def test_frame_storage_does_not_change_the_sinograms(spec, frames, limit, cut):
+    """Frames held as event codes (made dense past ``limit`` codes) equal frames binned densely.
+
+    ``limit`` is lowered from its default (half the bins) so that frames cross it while the events of
+    the second half are added.
+    """
+    cols = _events(spec)
+    with_delayed = "delayed" in cols
+    dense = empty_state(GEOMETRY, frames, with_delayed, sparse=False)
+    bin_event_arrays(cols, GEOMETRY, frames=frames, state=dense)
+    held = empty_state(GEOMETRY, frames, with_delayed, sparse=True)
+    assert not held.is_dense
+    for store in held._stores:
+        store.limit = limit
+    k = int(cut * spec["n"])
+    bin_event_arrays({c: v[:k] for c, v in cols.items()}, GEOMETRY, frames=frames, state=held)
+    bin_event_arrays({c: v[k:] for c, v in cols.items()}, GEOMETRY, frames=frames, state=held)
+    np.testing.assert_array_equal(held.counts, dense.counts)
+    for f in range(len(frames)):
+        prompts, delayed = held.frame_sinograms(f)
+        np.testing.assert_array_equal(prompts, dense.prompts[f])
+        if with_delayed:
+            np.testing.assert_array_equal(delayed, dense.delayed[f])
+        codes = held.frame_codes(f)
+        if codes is not None:
+            assert codes.dtype == np.uint32 and len(codes) <= limit
+            rebuilt, rebuilt_delayed = sinograms_from_codes(codes, GEOMETRY.shape, with_delayed)
+            np.testing.assert_array_equal(rebuilt, dense.prompts[f])
+            assert (rebuilt_delayed is None) == (not with_delayed)
+            if with_delayed:
+                np.testing.assert_array_equal(rebuilt_delayed, dense.delayed[f])
+        assert_same_state(held.frame(f), dense.frame(f))
+    assert not held.is_dense                 # handing out frames leaves the storage as it is
+    assert_same_state(held, dense)           # .prompts makes it dense
+    assert held.is_dense

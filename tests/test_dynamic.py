@@ -85,6 +85,23 @@ def test_frames_add_up_to_the_whole_study(random_study):
     assert state.outside_accounting.read == 0
 
 
+def test_frame_tasks_carry_the_frame_sinograms(random_study):
+    """A frame shipped to a worker as event codes rebuilds exactly the frame's binned sinograms."""
+    from twinray.dynamic import _frame_task
+
+    source = open_events(random_study)
+    geometry = sinogram_geometry(source.scanner)
+    schedule = parse_schedule("10x1,5x10")     # about 500 events in 1 s frames, 5000 in 10 s (1408 bins)
+    state = bin_schedule(source, geometry, schedule)
+    tasks = [_frame_task(state, k, schedule, None) for k in range(schedule.n_frames)]
+    assert all(task.codes is not None for task in tasks[:10])    # short frames travel as codes
+    assert all(task.codes is None for task in tasks[10:])        # long ones were made dense
+    for k, task in enumerate(tasks):
+        prompts, delayed = task.sinograms(geometry.shape)
+        np.testing.assert_array_equal(prompts, state.prompts[k])
+        np.testing.assert_array_equal(delayed, state.delayed[k])
+
+
 def test_single_frame_equals_sinogram_command(random_study, tmp_path, capsys):
     """A one-frame schedule bins exactly what `twinray sinogram --frame` bins over the same window."""
     from twinray.cli.main import main
@@ -200,3 +217,17 @@ def test_cli_errors_and_truncation(random_study, tmp_path, capsys):
         code = main(["dynamic", str(random_study), "-o", str(tmp_path / "e"), *bad])
         err = capsys.readouterr().err
         assert code != 0 and err.startswith("error:") and words in err and "Traceback" not in err
+
+
+def test_frame_memory_bound_counts_the_events():
+    """30 frames of 1408 bins: 338 kB if all were dense; far less with few events (held as codes)."""
+    from twinray.dynamic import check_frames_fit_memory
+
+    geometry = sinogram_geometry(make_small_scanner())
+    dense_frame = geometry.n_bins * 8                      # prompts + delayed, int32
+    with pytest.raises(TwinrayInputError, match="30 frames"):
+        check_frames_fit_memory(geometry, 30, True, 29 * dense_frame)
+    check_frames_fit_memory(geometry, 30, True, 29 * dense_frame, n_events=1000)      # 4 kB of codes
+    # Enough events for every frame to be dense: the dense bound again.
+    with pytest.raises(TwinrayInputError, match="may need"):
+        check_frames_fit_memory(geometry, 30, True, 29 * dense_frame, n_events=30 * geometry.n_bins)

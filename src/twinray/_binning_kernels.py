@@ -291,3 +291,45 @@ def accumulate_codes_direct(codes, prompts_flat, delayed_flat):
                 delayed_flat[c >> 1] += 1
             else:
                 prompts_flat[c >> 1] += 1
+
+
+@njit(cache=True, nogil=True)
+def split_by_frame(codes, n_bins, offsets, out):
+    """Binned codes grouped by frame: ``out[offsets[k]:offsets[k + 1]]`` holds frame ``k``'s codes.
+
+    The frame index is taken off each code, leaving ``flat_bin << 1 |
+    is_delayed`` as uint32 (stable counting sort; rejected codes are
+    dropped). ``offsets`` has length n_frames + 1. Events usually arrive in
+    time order, so the frame of the previous code is tried before dividing.
+    """
+    n_frames = offsets.shape[0] - 1
+    offsets[:] = 0
+    span = np.int64(n_bins) << 1
+    lo = np.int64(0)
+    hi = span
+    k = 0
+    for i in range(codes.shape[0]):
+        c = codes[i]
+        if c < 0:
+            continue
+        if c < lo or c >= hi:
+            k = c // span
+            lo = k * span
+            hi = lo + span
+        offsets[k + 1] += 1
+    for f in range(n_frames):
+        offsets[f + 1] += offsets[f]
+    fill = offsets[:n_frames].copy()
+    lo = np.int64(0)
+    hi = span
+    k = 0
+    for i in range(codes.shape[0]):
+        c = codes[i]
+        if c < 0:
+            continue
+        if c < lo or c >= hi:
+            k = c // span
+            lo = k * span
+            hi = lo + span
+        out[fill[k]] = np.uint32(c - lo)
+        fill[k] += 1

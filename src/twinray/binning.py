@@ -13,7 +13,6 @@ loops over events are numba kernels in :mod:`twinray._binning_kernels`.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from decimal import Decimal
 
@@ -71,9 +70,16 @@ def check_frames(frames) -> tuple:
     return tuple(out)
 
 
-@dataclasses.dataclass(frozen=True, eq=False)
 class BinningState:
     """Binned sinograms and accounting of some events; mergeable.
+
+    Each frame's sinograms are held either densely or, for studies of many
+    frames, as the list of binned event codes of that frame until it holds
+    more events than half its number of bins (then it is made dense). A
+    whole-body frame of a few seconds is thus a few megabytes instead of
+    hundreds, and the binning pass never touches the memory of thirty dense
+    frames; :attr:`prompts` and :meth:`frame_sinograms` give dense arrays
+    whatever the storage.
 
     Attributes
     ----------
@@ -81,23 +87,81 @@ class BinningState:
     frames_s : tuple of (float, float) or None
         Half-open frames ``[start_s, end_s)``; None means one frame holding
         every event whatever its time.
-    prompts : ndarray of int32, shape (n_frames, planes, views, radial_bins)
-    delayed : ndarray of int32, same shape, or None
-        None when the events have no ``delayed`` column.
     counts : ndarray of int64, shape (n_frames + 1, len(FIELDS))
         Accounting counters per frame (rows whose time lies in the frame);
         the last row counts the events outside every frame.
+    with_delayed : bool
+        Whether there is a delayed sinogram (the events have a ``delayed`` column).
     """
 
-    geometry: SinogramGeometry
-    frames_s: tuple | None
-    prompts: np.ndarray
-    delayed: np.ndarray | None
-    counts: np.ndarray
+    def __init__(self, geometry: SinogramGeometry, frames_s, prompts, delayed, counts, *, frame_stores=None):
+        self.geometry = geometry
+        self.frames_s = frames_s
+        self.counts = counts
+        if frame_stores is None:
+            self._prompts, self._delayed = prompts, delayed
+            self._stores = None
+            self.with_delayed = delayed is not None
+        else:
+            self._prompts = self._delayed = None
+            self._stores = list(frame_stores)
+            self.with_delayed = bool(frame_stores[0].with_delayed)
+
+    # -- dense views -------------------------------------------------------------------------------------------
+
+    @property
+    def prompts(self) -> np.ndarray:
+        """int32 array (n_frames, planes, views, radial_bins); made dense (once) if frames are held as codes."""
+        self._make_dense()
+        return self._prompts
+
+    @property
+    def delayed(self) -> np.ndarray | None:
+        """int32 array of the same shape as :attr:`prompts`, or None without a ``delayed`` column."""
+        self._make_dense()
+        return self._delayed
+
+    @property
+    def is_dense(self) -> bool:
+        """True when every frame is held as dense arrays (no code lists)."""
+        return self._stores is None
+
+    def _make_dense(self) -> None:
+        if self._stores is None:
+            return
+        shape = (len(self._stores),) + self.geometry.shape
+        prompts = np.zeros(shape, np.int32)
+        delayed = np.zeros(shape, np.int32) if self.with_delayed else None
+        for k, store in enumerate(self._stores):
+            store.add_into(prompts[k], None if delayed is None else delayed[k])
+        self._prompts, self._delayed, self._stores = prompts, delayed, None
+
+    def frame_sinograms(self, k: int) -> tuple:
+        """``(prompts, delayed)`` of frame ``k`` as dense int32 arrays (planes, views, radial_bins).
+
+        Views of the dense arrays when the state is dense; otherwise new
+        arrays built from the frame's codes (the state is left as it is, so
+        frames can be handed out one at a time).
+        """
+        if self._stores is None:
+            return self._prompts[k], None if self._delayed is None else self._delayed[k]
+        return self._stores[k].dense(self.geometry.shape)
+
+    def frame_codes(self, k: int) -> np.ndarray | None:
+        """The binned codes of frame ``k`` (uint32, ``flat_bin << 1 | is_delayed``), or None if it is dense.
+
+        A compact form of a short frame for shipping to a worker;
+        :func:`sinograms_from_codes` makes the dense arrays.
+        """
+        if self._stores is None or self._stores[k].is_dense:
+            return None
+        return self._stores[k].codes()
+
+    # -- accounting --------------------------------------------------------------------------------------------
 
     @property
     def n_frames(self) -> int:
-        return self.prompts.shape[0]
+        return self.counts.shape[0] - 1
 
     @property
     def rows_read(self) -> int:
@@ -129,7 +193,7 @@ class BinningState:
         return Accounting.from_counts(counts)
 
     def frame(self, k: int) -> "BinningState":
-        """A single-frame state for frame ``k``; the other frames count as outside it."""
+        """A dense single-frame state for frame ``k``; the other frames count as outside it."""
         others = np.delete(self.counts, k, axis=0)
         counts = np.zeros((2, len(FIELDS)), np.int64)
         counts[0] = self.counts[k]
@@ -137,16 +201,17 @@ class BinningState:
         counts[1, INVALID_CRYSTAL] = others[:, INVALID_CRYSTAL].sum()
         counts[1, OUTSIDE_FRAME] = counts[1, READ] - counts[1, INVALID_CRYSTAL]
         frames = None if self.frames_s is None else (self.frames_s[k],)
-        return BinningState(self.geometry, frames, self.prompts[k:k + 1],
-                            None if self.delayed is None else self.delayed[k:k + 1], counts)
+        prompts, delayed = self.frame_sinograms(k)
+        return BinningState(self.geometry, frames, prompts[None], None if delayed is None else delayed[None],
+                            counts)
 
     def merge(self, other: "BinningState") -> "BinningState":
-        """Sum of two states of the same geometry and frames (e.g. two halves of a study)."""
+        """Sum of two states of the same geometry and frames (e.g. two halves of a study); dense."""
         if not self.geometry.same_layout(other.geometry):
             raise TwinrayInputError("cannot merge binning states of different sinogram geometries")
         if self.frames_s != other.frames_s:
             raise TwinrayInputError("cannot merge binning states with different frames")
-        if (self.delayed is None) != (other.delayed is None):
+        if self.with_delayed != other.with_delayed:
             raise TwinrayInputError("cannot merge a binning state with delayed events and one without")
         delayed = None if self.delayed is None else self.delayed + other.delayed
         return BinningState(self.geometry, self.frames_s, self.prompts + other.prompts, delayed,
@@ -155,7 +220,76 @@ class BinningState:
     __add__ = merge
 
 
-def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = True) -> BinningState:
+class _FrameStore:
+    """One frame of a many-frame state: a list of uint32 event codes, or dense arrays once it is full.
+
+    ``limit`` is the number of codes above which the frame is made dense
+    (half its bins: the codes then use a quarter of the memory of the dense
+    prompts + delayed pair, so the memory of a study stays bounded by that of
+    its dense frames however many events it has).
+    """
+
+    def __init__(self, shape: tuple, with_delayed: bool, limit: int):
+        self.shape = shape
+        self.with_delayed = with_delayed
+        self.limit = limit
+        self.chunks: list = []
+        self.n_codes = 0
+        self.prompts = self.delayed = None
+
+    @property
+    def is_dense(self) -> bool:
+        return self.prompts is not None
+
+    def add(self, codes: np.ndarray) -> None:
+        """Add binned codes (uint32) of this frame."""
+        if self.prompts is None and self.n_codes + len(codes) <= self.limit:
+            self.chunks.append(codes.copy())
+            self.n_codes += len(codes)
+            return
+        if self.prompts is None:
+            self.prompts, self.delayed = sinograms_from_codes(self.codes(), self.shape, self.with_delayed)
+            self.chunks, self.n_codes = [], 0
+        kernels.accumulate_codes_direct(codes, self.prompts.reshape(-1), self._delayed_flat())
+
+    def _delayed_flat(self) -> np.ndarray:
+        return self.delayed.reshape(-1) if self.delayed is not None else np.zeros(1, np.int32)
+
+    def codes(self) -> np.ndarray:
+        """All codes so far, as one array."""
+        if len(self.chunks) != 1:
+            self.chunks = [np.concatenate(self.chunks) if self.chunks else np.zeros(0, np.uint32)]
+        return self.chunks[0]
+
+    def add_into(self, prompts: np.ndarray, delayed: np.ndarray | None) -> None:
+        """Add this frame to dense arrays of its shape."""
+        if self.prompts is not None:
+            prompts += self.prompts
+            if delayed is not None:
+                delayed += self.delayed
+            return
+        d_flat = delayed.reshape(-1) if delayed is not None else np.zeros(1, np.int32)
+        for chunk in self.chunks:
+            kernels.accumulate_codes_direct(chunk, prompts.reshape(-1), d_flat)
+
+    def dense(self, shape: tuple) -> tuple:
+        """Dense ``(prompts, delayed)`` of this frame: its own arrays if it is dense (not to be modified), else new ones."""
+        if self.prompts is not None:
+            return self.prompts, self.delayed
+        return sinograms_from_codes(self.codes(), shape, self.with_delayed)
+
+
+def sinograms_from_codes(codes: np.ndarray, shape: tuple, with_delayed: bool) -> tuple:
+    """Dense ``(prompts, delayed)`` int32 sinograms of ``shape`` from binned codes (see :meth:`BinningState.frame_codes`)."""
+    prompts = np.zeros(shape, np.int32)
+    delayed = np.zeros(shape, np.int32) if with_delayed else None
+    kernels.accumulate_codes_direct(np.asarray(codes), prompts.reshape(-1),
+                                    delayed.reshape(-1) if delayed is not None else np.zeros(1, np.int32))
+    return prompts, delayed
+
+
+def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = True,
+                sparse: bool | None = None) -> BinningState:
     """A state with no events binned yet.
 
     Parameters
@@ -164,14 +298,23 @@ def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = Tr
     frames : sequence of (start_s, end_s), optional
         Default: one frame holding every event.
     with_delayed : bool
-        Allocate the delayed sinogram.
+        Keep a delayed sinogram.
+    sparse : bool, optional
+        Hold each frame as a list of event codes until it is half full (see
+        :class:`BinningState`). Default: when there is more than one frame.
     """
     frames_s = None if frames is None else check_frames(frames)
     n_frames = 1 if frames_s is None else len(frames_s)
+    counts = np.zeros((n_frames + 1, len(FIELDS)), np.int64)
+    if sparse is None:
+        sparse = n_frames > 1
+    if sparse:
+        limit = geometry.n_bins // 2
+        stores = [_FrameStore(geometry.shape, with_delayed, limit) for _ in range(n_frames)]
+        return BinningState(geometry, frames_s, None, None, counts, frame_stores=stores)
     shape = (n_frames,) + geometry.shape
     prompts = np.zeros(shape, np.int32)
     delayed = np.zeros(shape, np.int32) if with_delayed else None
-    counts = np.zeros((n_frames + 1, len(FIELDS)), np.int64)
     return BinningState(geometry, frames_s, prompts, delayed, counts)
 
 
@@ -204,8 +347,15 @@ class _Binner:
         self.bins_per_plane = g.views * g.radial_bins
         self.n_bins = g.n_bins
         self.n_keys = state.n_frames * g.planes
-        self.prompts_flat = state.prompts.reshape(-1)
-        self.delayed_flat = state.delayed.reshape(-1) if state.delayed is not None else np.zeros(1, np.int32)
+        # Many-frame states keep codes per frame (see BinningState); touch no dense array then.
+        self.sparse = not state.is_dense
+        if self.sparse:
+            self.frame_offsets = np.zeros(state.n_frames + 1, np.int64)
+            self.split_codes = np.zeros(0, np.uint32)
+            self.prompts_flat = self.delayed_flat = np.zeros(1, np.int32)
+        else:
+            self.prompts_flat = state.prompts.reshape(-1)
+            self.delayed_flat = state.delayed.reshape(-1) if state.delayed is not None else np.zeros(1, np.int32)
         self.key_counts = np.zeros(self.n_keys + 1, np.int64)
         self.codes = np.zeros(0, np.int64)
         self.sorted_codes = np.zeros(0, np.int64)
@@ -229,7 +379,7 @@ class _Binner:
             return
         t = _column(arrays, "time_ns", np.int64) if self.use_time else self.no_time
         d = _column(arrays, "delayed", np.bool_) if "delayed" in arrays else self.no_flag
-        if "delayed" in arrays and self.state.delayed is None:
+        if "delayed" in arrays and not self.state.with_delayed:
             raise TwinrayInputError("events have a delayed column but the binning state has no delayed sinogram")
         if self.use_energy:
             ea = _column(arrays, "energy_a_kev", np.float32)
@@ -250,7 +400,13 @@ class _Binner:
                                self.position_of, self.inplane_code, self.factored, self.by_sum, self.half,
                                self.by_diff, self.plane_of_rings, self.bins_per_plane, self.n_bins, codes,
                                self.state.counts)
-        if self.accumulate == "direct":
+        if self.sparse:
+            if len(self.split_codes) < n:
+                self.split_codes = np.empty(n, np.uint32)
+            kernels.split_by_frame(codes, self.n_bins, self.frame_offsets, self.split_codes)
+            for k in np.flatnonzero(np.diff(self.frame_offsets)):
+                self.state._stores[k].add(self.split_codes[self.frame_offsets[k]:self.frame_offsets[k + 1]])
+        elif self.accumulate == "direct":
             kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
         else:
             kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,

@@ -53,8 +53,9 @@ class FrameTask:
     ----------
     index : int
         Frame index (row of the singles rates, if any).
-    prompts, delayed : ndarray
+    prompts, delayed : ndarray or None
         Binned counts ``(plane, view, radial)``; delayed may be None.
+        Both None when the frame comes as ``codes``.
     frame_start_s, frame_duration_s : float
         The frame as the corrections and the image units see it (a thinned
         replicate is a scan of P times the duration).
@@ -69,6 +70,28 @@ class FrameTask:
     frame_start_s: float
     frame_duration_s: float
     decay_factor: float | None = None
+    codes: np.ndarray | None = None
+    with_delayed: bool = False
+
+    def sinograms(self, shape: tuple) -> tuple:
+        """Dense ``(prompts, delayed)``: as given, or built from the codes here, in the worker."""
+        if self.codes is None:
+            return self.prompts, self.delayed
+        from .binning import sinograms_from_codes
+        return sinograms_from_codes(self.codes, shape, self.with_delayed)
+
+
+def _frame_task(state, k: int, schedule, decay_factor) -> FrameTask:
+    """Frame ``k`` of a binning state as a task: its event codes when it is held so (a few MB instead of
+    the dense sinograms, made dense in the worker), else its dense arrays."""
+    codes = state.frame_codes(k)
+    if codes is not None:
+        prompts = delayed = None
+    else:
+        prompts, delayed = state.frame_sinograms(k)
+    return FrameTask(index=k, prompts=prompts, delayed=delayed, frame_start_s=schedule.starts_s[k],
+                     frame_duration_s=schedule.durations_s[k], decay_factor=decay_factor, codes=codes,
+                     with_delayed=state.with_delayed)
 
 
 def frame_image(task: FrameTask, *, geometry, correction_options, correction_inputs, recon_options,
@@ -84,7 +107,8 @@ def frame_image(task: FrameTask, *, geometry, correction_options, correction_inp
     from .corrections.apply import apply_corrections
     from .reconstruct.pipeline import reconstruct_arrays
 
-    corrected = apply_corrections(task.prompts, task.delayed, geometry, correction_options, correction_inputs,
+    prompts, delayed = task.sinograms(geometry.shape)
+    corrected = apply_corrections(prompts, delayed, geometry, correction_options, correction_inputs,
                                   frame_index=task.index, frame_start_s=task.frame_start_s,
                                   frame_duration_s=task.frame_duration_s, isotope=isotope)
     attrs = dict(corrected.attrs)
@@ -92,7 +116,7 @@ def frame_image(task: FrameTask, *, geometry, correction_options, correction_inp
         attrs["decay_correction_factor"] = float(task.decay_factor)
     elif attrs.get("half_life_s") is None:
         attrs.pop("decay_correction_factor", None)   # unknown isotope: not decay-corrected
-    arrays = {"prompts": task.prompts, **corrected.datasets}
+    arrays = {"prompts": prompts, **corrected.datasets}
     if correction_inputs is None or correction_inputs.acf is None:
         arrays.pop("acf")  # all ones without a mu-map: say "no attenuation correction" in the sidecar
     result = reconstruct_arrays(arrays, geometry, task.frame_start_s, task.frame_duration_s, recon_options,
@@ -142,12 +166,23 @@ def decay_reference_s(metadata: dict, reference: str = "start") -> float:
     return (injection - start).total_seconds()
 
 
-def check_frames_fit_memory(geometry, n_frames: int, with_delayed: bool, memory_bytes: int) -> None:
-    """Refuse a one-pass binning whose sinograms would not fit the memory budget."""
-    need = geometry.n_bins * 4 * (2 if with_delayed else 1) * n_frames
+def check_frames_fit_memory(geometry, n_frames: int, with_delayed: bool, memory_bytes: int,
+                            n_events: int | None = None) -> None:
+    """Refuse a one-pass binning whose frames could outgrow the memory budget.
+
+    A frame is held as 4-byte event codes until it has half as many events
+    as bins, then densely (see :class:`twinray.binning.BinningState`); with
+    ``n_events`` in the study at most ``2 * n_events / n_bins`` frames can
+    become dense, so the bound is that many dense frames plus 4 bytes per
+    event (never more than every frame dense).
+    """
+    dense_frame = geometry.n_bins * 4 * (2 if with_delayed else 1)
+    need = dense_frame * n_frames
+    if n_events is not None and n_frames > 1:
+        need = min(need, dense_frame * min(n_frames, 2 * int(n_events) // geometry.n_bins) + 4 * int(n_events))
     if need > memory_bytes:
         raise TwinrayInputError(
-            f"{n_frames} frames of a {'x'.join(map(str, geometry.shape))} sinogram need {need / 2**30:.1f} GiB "
+            f"{n_frames} frames of a {'x'.join(map(str, geometry.shape))} sinogram may need {need / 2**30:.1f} GiB "
             f"(budget {memory_bytes / 2**30:.1f} GiB); use --rebin ssrb, fewer frames or a larger --memory-gb")
 
 
@@ -274,7 +309,7 @@ def make_dynamic(events, output_dir, *, schedule, truncate: bool = False, scanne
     refuse_overwriting_inputs(output_dir / "dynamic.json", [source.path, *source.paths])
     reference_s = decay_reference_s(source.metadata, decay_reference)
     geometry = sinogram_geometry(source.scanner, rebin)
-    check_frames_fit_memory(geometry, schedule.n_frames, source.has_delayed, memory_bytes)
+    check_frames_fit_memory(geometry, schedule.n_frames, source.has_delayed, memory_bytes, source.num_rows)
     warnings = []
 
     # Decay factors per frame (the isotope comes from the event metadata).
@@ -307,10 +342,7 @@ def make_dynamic(events, output_dir, *, schedule, truncate: bool = False, scanne
             warnings.append(f"frame {k} ({schedule.starts_s[k]:g} s + {schedule.durations_s[k]:g} s) "
                             "holds no events; its image is zero")
 
-    tasks = [FrameTask(index=k, prompts=state.prompts[k],
-                       delayed=None if state.delayed is None else state.delayed[k],
-                       frame_start_s=schedule.starts_s[k], frame_duration_s=schedule.durations_s[k],
-                       decay_factor=float(factors[k]) if iso is not None else None)
+    tasks = [_frame_task(state, k, schedule, float(factors[k]) if iso is not None else None)
              for k in range(schedule.n_frames)]
     done = [0]
 
