@@ -47,25 +47,54 @@ def test_splitmix64_reference_outputs():
 
 
 def test_kernel_weights_match_the_python_reference():
-    """The numba draws equal an independent pure-Python evaluation of the same definition."""
+    """The numba draws equal an independent pure-Python evaluation of the same definition: replicates
+    2p and 2p+1 take the high and low 32 bits of SplitMix64 output number row of generator p, and the
+    Poisson(1) weight is the smallest k with u / 2**32 < F(k), F from scipy.stats.poisson (reference
+    library)."""
+    cdf = scipy.stats.poisson.cdf(np.arange(40), 1.0)
     w = replicate_weights(5, "bootstrap", None, 3, 1000, 50)
-    keys = [rk.stream_key(5, r) for r in range(3)]
-    cdf = [sum(math.exp(-1) / math.factorial(j) for j in range(k + 1)) for k in range(21)]
+    keys = [rk.stream_key(5, p) for p in range(2)]
     for i in range(50):
         for r in range(3):
-            u = rk.draw_uniform(keys[r], 1000 + i)
-            expected = next((k for k, c in enumerate(cdf) if u < c), 20)
-            assert w[i, r] == expected
-    t = replicate_weights(5, "thin", [0.3], 2, 7, 40)
-    keys = [rk.stream_key(5, r) for r in range(2)]
-    for i in range(40):
-        for r in range(2):
-            assert t[i, r] == (rk.draw_uniform(keys[r], 7 + i) < 0.3)
+            u = rk.draw_uniform(keys[r // 2], 1000 + i, r % 2)
+            expected = int(np.argmax(u < cdf))
+            assert w[i, r] == expected == rk.poisson1_weight(rk.draw_u32(keys[r // 2], 1000 + i, r % 2))
+    t = replicate_weights(5, "thin", [0.3, 0.8], 2, 7, 40)
+    for f, p in enumerate((0.3, 0.8)):
+        key = rk.stream_key(5, (f << 32) + 0)
+        for i in range(40):
+            for r in range(2):
+                assert t[i, 2 * f + r] == (rk.draw_uniform(key, 7 + i, r) < p)
+
+
+def test_poisson1_thresholds_against_scipy():
+    """Integer inversion thresholds T[k] = ceil(F(k) * 2**32) of the Poisson(1) CDF (scipy.stats.poisson,
+    reference library); the largest weight is 12 because P(K > 11) = 8.3e-10 exceeds the 2**-32
+    resolution of a uniform while P(K > 12) = 6.4e-11 does not; the shortcut table agrees with the
+    comparisons at every cell edge and around every threshold."""
+    t = rk.POISSON1_THRESHOLDS
+    scaled = scipy.stats.poisson.cdf(np.arange(len(t)), 1.0) * 2.0 ** 32
+    assert np.all(t - scaled >= -1e-6) and np.all(t - scaled < 1 + 1e-6)
+    assert rk.MAX_WEIGHT == 12 == len(t)
+    assert scipy.stats.poisson.sf(11, 1.0) > 2.0 ** -32 > scipy.stats.poisson.sf(12, 1.0)
+    shift = 32 - rk.TABLE_BITS
+    cells = np.arange(1 << rk.TABLE_BITS, dtype=np.int64)
+    probes = np.concatenate([cells << shift, ((cells + 1) << shift) - 1, t - 1, t, t + 1, [2 ** 32 - 1]])
+    for u in probes:
+        assert rk._poisson1(np.int64(u)) == np.searchsorted(t, u, side="right") == rk.poisson1_weight(u)
+    # every probability of the discrete law is Poisson(1)'s to within the 2**-32 resolution
+    edges = np.concatenate([[0], t, [2 ** 32]])
+    pmf = np.diff(edges) / 2.0 ** 32
+    exact = scipy.stats.poisson.pmf(np.arange(13), 1.0)
+    exact[12] += scipy.stats.poisson.sf(12, 1.0)
+    np.testing.assert_allclose(pmf, exact, rtol=0, atol=2.0 ** -32)
+    assert rk.thin_threshold(1.0) == 2 ** 32 and rk.thin_threshold(0.5) == 2 ** 31
 
 
 def test_poisson1_weights_follow_the_poisson_law():
     """Bootstrap weights ~ Poisson(1) (Hanley & MacGibbon 2006): chi-square test against
-    scipy.stats.poisson (reference library) on 400 000 draws."""
+    scipy.stats.poisson (reference library) on 400 000 draws; mean 1 and variance 1 (standard errors
+    0.0016 and 0.0027: sqrt(1/n) and sqrt((mu4 - 1)/n) with mu4 = 4 for Poisson(1), textbook)."""
     w = replicate_weights(1, "bootstrap", None, 2, 0, 200_000).reshape(-1)
     observed = np.bincount(w, minlength=6)[:6].astype(float)
     observed[5] = (w >= 5).sum()
@@ -73,7 +102,30 @@ def test_poisson1_weights_follow_the_poisson_law():
     expected = np.append(p, 1 - p.sum()) * w.size
     chi2 = ((observed - expected) ** 2 / expected).sum()
     assert scipy.stats.chi2.sf(chi2, df=5) > 1e-4
-    assert w.mean() == pytest.approx(1.0, abs=0.01) and w.var() == pytest.approx(1.0, abs=0.015)
+    assert w.mean() == pytest.approx(1.0, abs=0.008) and w.var() == pytest.approx(1.0, abs=0.014)
+
+
+def test_paired_replicates_are_independent():
+    """Replicates 0 and 1 take the two halves of one 64-bit output: their weights must be independent
+    (chi-square test of independence, scipy.stats.chi2_contingency, reference library; correlation
+    within 5 standard errors 1/sqrt(n) of 0), and so must replicates 1 and 2 (different generators)."""
+    w = replicate_weights(7, "bootstrap", None, 3, 123, 200_000)
+    for a, b in ((0, 1), (1, 2)):
+        table = np.zeros((4, 4))
+        np.add.at(table, (np.minimum(w[:, a], 3), np.minimum(w[:, b], 3)), 1)
+        assert scipy.stats.chi2_contingency(table)[1] > 1e-4
+        assert abs(np.corrcoef(w[:, a], w[:, b])[0, 1]) < 5 / math.sqrt(len(w))
+
+
+def test_thinning_weights_are_bernoulli():
+    """Thinning weights are Bernoulli(P): mean P and variance P(1 - P) (textbook), within 5 standard
+    errors sqrt(P(1 - P)/n) for the mean."""
+    n = 200_000
+    t = replicate_weights(2, "thin", [0.1, 0.75], 2, 0, n)
+    for col, p in ((0, 0.1), (1, 0.1), (2, 0.75), (3, 0.75)):
+        assert set(np.unique(t[:, col])) <= {0, 1}
+        assert abs(t[:, col].mean() - p) < 5 * math.sqrt(p * (1 - p) / n)
+        assert t[:, col].var() == pytest.approx(p * (1 - p), rel=0.02)
 
 
 def test_thinning_counts_are_binomial(study, original):
@@ -120,15 +172,64 @@ def test_reproducible_whatever_the_batch_size_and_replicate_count(study):
     b = bin_replicates(study, mode="bootstrap", replicates=4, seed=21, batch_size=999)
     np.testing.assert_array_equal(a.prompts, b.prompts)
     np.testing.assert_array_equal(a.delayed, b.delayed)
-    # replicate r does not depend on how many replicates were asked for
+    # replicate r does not depend on how many replicates were asked for (odd counts use half a pair)
     c = bin_replicates(study, mode="bootstrap", replicates=2, seed=21, batch_size=4096)
     np.testing.assert_array_equal(a.prompts[:2], c.prompts)
+    c3 = bin_replicates(study, mode="bootstrap", replicates=3, seed=21, batch_size=5000)
+    np.testing.assert_array_equal(a.prompts[:3], c3.prompts)
+    np.testing.assert_array_equal(a.totals[:3], c3.totals)
     d = bin_replicates(study, mode="bootstrap", replicates=4, seed=22)
     assert not np.array_equal(a.prompts, d.prompts)
-    # a tiny memory budget reads the events once per replicate: same numbers
+    # a tiny memory budget reads the events once per pair of replicates: same numbers
     e = bin_replicates(study, mode="bootstrap", replicates=4, seed=21, memory_bytes=1)
-    assert e.passes == 4 and a.passes == 1
+    assert e.passes == 2 and a.passes == 1
     np.testing.assert_array_equal(a.prompts, e.prompts)
+    np.testing.assert_array_equal(a.totals, e.totals)
+
+
+@pytest.fixture(scope="module")
+def hot_study(tmp_path_factory):
+    """5000 random events plus 3000 on one line of response (a bin with thousands of counts)."""
+    from conftest import event_metadata
+    from twinray.event_writer import write_events
+
+    scanner = make_small_scanner()
+    rng = np.random.default_rng(12)
+    cols = random_events(scanner, 8000, rng)
+    hot = rng.permutation(8000)[:3000]
+    cols["crystal_a"][hot] = 1
+    cols["crystal_b"][hot] = 9 + scanner.crystals_per_ring      # ring 1, opposite side
+    path = tmp_path_factory.mktemp("resample_hot") / "events.parquet"
+    write_events(path, cols, event_metadata(scanner))
+    return path
+
+
+@pytest.mark.parametrize("mode, fractions, replicates", [("bootstrap", None, 5), ("thin", [0.3, 1.0], 3)])
+def test_replicates_equal_the_sum_of_their_weights(hot_study, mode, fractions, replicates):
+    """Every replicate bin equals the sum of the weights of its events, summed independently with
+    numpy (np.add.at) from replicate_weights and the ordinary classification, whatever the batch size;
+    the hot bin (about 3000 events) overflows the one-byte working counts many times over."""
+    from twinray.binning import _Binner, _energy_window, empty_state
+    from twinray.events import open_events, read_events
+    from twinray.resample import _classify
+
+    source = open_events(hot_study)
+    state = bin_replicates(source, mode=mode, fractions=fractions, replicates=replicates, seed=17, batch_size=777)
+    g = state.geometry
+    cols = read_events(source, ["crystal_a", "crystal_b", "delayed"])
+    classifier = _Binner(empty_state(g, None, with_delayed=True), _energy_window(True, g.scanner, False))
+    codes = _classify(classifier, cols).copy()
+    weights = replicate_weights(17, mode, fractions, replicates, 0, len(codes))
+    for flag, got in ((0, state.prompts), (1, state.delayed)):
+        sel = (codes >= 0) & ((codes & 1) == flag)
+        expected = np.zeros((state.n_streams, g.n_bins), np.int64)
+        for r in range(state.n_streams):
+            np.add.at(expected[r], codes[sel] >> 1, weights[sel, r])
+        np.testing.assert_array_equal(got.reshape(state.n_streams, -1), expected)
+        np.testing.assert_array_equal(state.totals[:, flag], expected.sum(axis=1))
+    assert state.prompts.max() > 2000                # the hot bin went through the spill path
+    other = bin_replicates(source, mode=mode, fractions=fractions, replicates=replicates, seed=17)
+    np.testing.assert_array_equal(other.prompts, state.prompts)
 
 
 def test_accounting_is_that_of_the_original_events(study, original):

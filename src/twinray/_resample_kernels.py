@@ -5,12 +5,33 @@ The Python function that validates inputs and calls these is
 :func:`twinray._binning_kernels.classify_batch` (the same lookup-table logic
 as ordinary binning); these kernels only draw weights and add them up.
 
-Random numbers are counter-based: the weight of event ``row`` (its global
-row index in the study) in resampling stream ``key`` is a pure function of
-``(key, row)``, namely output number ``row`` of a SplitMix64 generator whose
-state starts at ``key``. No state is carried from one event or batch to the
-next, so the replicates do not depend on the batch size, on the order in
-which batches are processed, or on how many workers share the job.
+Random numbers are counter-based. Replicates come in pairs: the two
+replicates ``2p`` and ``2p + 1`` of one thinning fraction share a generator
+whose key depends only on the seed, the fraction number and ``p``
+(:func:`stream_key`). For the event with global row index ``row``, output
+number ``row`` of a SplitMix64 generator started at that key is one 64-bit
+number; its high 32 bits are the uniform of replicate ``2p`` and its low 32
+bits that of replicate ``2p + 1``. So the weight of (replicate, row) is a
+pure function of ``(seed, fraction, replicate, row)``: no state is carried
+from one event or batch to the next, and the replicates do not depend on
+the batch size, on the order in which batches are processed, on how many
+replicates are asked for, or on how many workers share the job.
+
+Exactness. A uniform is an integer ``u`` in ``[0, 2**32)``, i.e. a
+resolution of ``2**-32``. The Poisson(1) weight is found by inversion
+against integer thresholds ``T[k] = ceil(F(k) * 2**32)`` of the Poisson(1)
+CDF ``F`` (computed to 60 digits): the weight is the smallest ``k`` with
+``u < T[k]``, which is exactly "the smallest ``k`` with ``u / 2**32 < F(k)``".
+Each probability ``P(K = k)`` is therefore that of Poisson(1) to within
+``2**-32`` (2.3e-10), and since ``T[12] = 2**32`` a weight never exceeds 12:
+the tail ``P(K > 12)`` (6.4e-11) is folded into ``K = 12``. A 4096-entry
+table on the top 12 bits of ``u`` answers directly when its cell lies between
+two thresholds, and the comparisons settle the 7 cells a threshold splits
+(0.17 % of draws): the table is a shortcut, the result is that of the
+comparisons.
+Thinning with probability ``P`` keeps an event when ``u < round(P * 2**32)``:
+a Bernoulli draw with probability within ``2**-33`` of ``P``, exactly 1 for
+``P = 1``.
 
 References
 ----------
@@ -23,20 +44,72 @@ using Poisson frequencies", Comput Methods Programs Biomed 83(1):57-62, 2006.
 
 from __future__ import annotations
 
-import math
+from decimal import ROUND_CEILING, Decimal, localcontext
+from fractions import Fraction
 
 import numpy as np
-from numba import njit
+from llvmlite import ir
+from numba import njit, prange
+from numba.core import cgutils, types
+from numba.extending import intrinsic
 
 GOLDEN_GAMMA = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
+UNIFORM_BITS = 32
 
 MODE_BOOTSTRAP = 0
 MODE_THIN = 1
 
-#: Poisson(1) CDF up to k = 20 (P(K > 20) is about 4e-20, below the 2^-53 resolution of a uniform).
-POISSON1_CDF = np.cumsum([math.exp(-1.0) / math.factorial(k) for k in range(21)])
-POISSON1_CDF[-1] = 1.0
+
+def poisson1_thresholds(bits: int = UNIFORM_BITS) -> np.ndarray:
+    """Integer inversion thresholds ``ceil(F(k) * 2**bits)`` of the Poisson(1) CDF ``F``.
+
+    Only the thresholds below ``2**bits`` are returned: with ``n`` of them a
+    weight lies in ``0 .. n``. ``F(k) = exp(-1) * sum_{j<=k} 1/j!`` is summed
+    with 60 significant digits, so every threshold is exact.
+    """
+    out = []
+    with localcontext() as ctx:
+        ctx.prec = 60
+        e_minus_1 = Decimal(-1).exp()
+        term, cdf = Decimal(1), Decimal(0)
+        k = 0
+        while True:
+            if k:
+                term /= k
+            cdf += e_minus_1 * term
+            t = int((cdf * (1 << bits)).to_integral_value(rounding=ROUND_CEILING))
+            if t >= 1 << bits:
+                break
+            out.append(t)
+            k += 1
+    return np.array(out, dtype=np.int64)
+
+
+#: Poisson(1) inversion thresholds on 32-bit uniforms (12 of them).
+POISSON1_THRESHOLDS = poisson1_thresholds()
+#: Largest weight a Poisson(1) draw can take (12): P(K > 12) = 6.4e-11 is folded into K = 12.
+MAX_WEIGHT = len(POISSON1_THRESHOLDS)
+#: Bits of the uniform looked up in the shortcut table.
+TABLE_BITS = 12
+_NO_ENTRY = 255
+
+
+def _poisson1_table() -> np.ndarray:
+    """Weight of every cell of the top ``TABLE_BITS`` bits, or 255 when a threshold splits the cell."""
+    shift = UNIFORM_BITS - TABLE_BITS
+    cells = np.arange(1 << TABLE_BITS, dtype=np.int64)
+    first = np.searchsorted(POISSON1_THRESHOLDS, cells << shift, side="right")
+    last = np.searchsorted(POISSON1_THRESHOLDS, ((cells + 1) << shift) - 1, side="right")
+    return np.where(first == last, first, _NO_ENTRY).astype(np.uint8)
+
+
+POISSON1_TABLE = _poisson1_table()
+
+
+def thin_threshold(fraction: float) -> int:
+    """``round(P * 2**32)``: an event is kept when its 32-bit uniform is below it."""
+    return int(round(Fraction(float(fraction)) * (1 << UNIFORM_BITS)))
 
 
 def mix64(z: int) -> int:
@@ -48,17 +121,31 @@ def mix64(z: int) -> int:
 
 
 def stream_key(seed: int, stream: int) -> int:
-    """Starting state of one resampling stream (replicate), from the user's seed.
+    """Starting state of one generator (a pair of replicates), from the user's seed.
 
     Both numbers go through the SplitMix64 output function, so neighbouring
-    seeds and streams give unrelated states.
+    seeds and generators give unrelated states.
     """
     return mix64(mix64(int(seed) & _MASK) ^ mix64((int(stream) + 1) * GOLDEN_GAMMA))
 
 
-def draw_uniform(key: int, row: int) -> float:
-    """Uniform in [0, 1) of event ``row`` in stream ``key`` (pure-Python twin of the kernel)."""
-    return (mix64(key + (int(row) + 1) * GOLDEN_GAMMA) >> 11) * 2.0 ** -53
+def draw_u32(key: int, row: int, half: int) -> int:
+    """32-bit uniform of event ``row`` from generator ``key``: ``half`` 0 the high bits, 1 the low bits.
+
+    Pure-Python twin of the kernels' draw.
+    """
+    z = mix64(key + (int(row) + 1) * GOLDEN_GAMMA)
+    return (z >> 32) if half == 0 else (z & 0xFFFFFFFF)
+
+
+def draw_uniform(key: int, row: int, half: int) -> float:
+    """The same draw as a float in [0, 1), resolution 2**-32."""
+    return draw_u32(key, row, half) * 2.0 ** -UNIFORM_BITS
+
+
+def poisson1_weight(u: int) -> int:
+    """Poisson(1) weight of a 32-bit uniform by inversion (pure-Python twin)."""
+    return int(np.searchsorted(POISSON1_THRESHOLDS, int(u), side="right"))
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -69,46 +156,67 @@ def _mix64(z):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _uniform(key, row):
-    z = _mix64(key + (np.uint64(row) + np.uint64(1)) * np.uint64(GOLDEN_GAMMA))
-    return np.float64(z >> np.uint64(11)) * (1.0 / 9007199254740992.0)
+def _poisson1(u):
+    # Shortcut table on the top bits; the comparisons decide the few cells a threshold splits.
+    w = POISSON1_TABLE[u >> (UNIFORM_BITS - TABLE_BITS)]
+    if w == _NO_ENTRY:
+        w = 0
+        for k in range(MAX_WEIGHT):
+            w += u >= POISSON1_THRESHOLDS[k]
+    return w
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _poisson1(u, cdf):
-    # Inversion: the smallest k with u < F(k). The first six comparisons are summed
-    # without branches (a Poisson(1) draw exceeds 5 with probability 6e-4), so the
-    # unpredictable outcome costs no mispredicted jumps; the rare tail is walked.
-    k = ((u >= cdf[0]) + (u >= cdf[1]) + (u >= cdf[2]) + (u >= cdf[3]) + (u >= cdf[4])
-         + (u >= cdf[5]))
-    if k == 6:
-        last = cdf.shape[0] - 1
-        while k < last and u >= cdf[k]:
-            k += 1
-    return k
+def _draw_weights(keys, row, thin, thresholds, out, i):
+    """Weights of event ``row`` in every slot: ``out[i, g]`` (high half of generator ``g``),
+    ``out[i, G + g]`` (low half)."""
+    n_gen = keys.shape[0]
+    step = (np.uint64(row) + np.uint64(1)) * np.uint64(GOLDEN_GAMMA)
+    for g in range(n_gen):
+        z = _mix64(keys[g] + step)
+        hi = np.int64(z >> np.uint64(32))
+        lo = np.int64(z & np.uint64(0xFFFFFFFF))
+        if thin:
+            out[i, g] = hi < thresholds[g]
+            out[i, n_gen + g] = lo < thresholds[n_gen + g]
+        else:
+            out[i, g] = _poisson1(hi)
+            out[i, n_gen + g] = _poisson1(lo)
 
 
-@njit(cache=True, nogil=True, inline="always")
-def _weight(key, row, thin, fraction, cdf):
-    """Weight of event ``row`` in one stream: Bernoulli(fraction) when thinning, else Poisson(1)."""
-    u = _uniform(key, row)
-    if thin:
-        return np.int32(u < fraction)
-    return np.int32(_poisson1(u, cdf))
+@intrinsic
+def _prefetch_for_write(typingctx, array, index):
+    """Hint the cache to fetch ``array[index]`` for writing (llvm.prefetch; no effect on results)."""
+    sig = types.void(array, index)
+
+    def codegen(context, builder, signature, args):
+        aryty = signature.args[0]
+        ary = context.make_array(aryty)(context, builder, args[0])
+        ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]], wraparound=False)
+        i8p = ir.IntType(8).as_pointer()
+        i32 = ir.IntType(32)
+        fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
+        # rw = 1 (write), locality = 3 (keep in all cache levels), cache type = 1 (data)
+        builder.call(fn, [builder.bitcast(ptr, i8p), ir.Constant(i32, 1), ir.Constant(i32, 3), ir.Constant(i32, 1)])
+        return context.get_dummy_value()
+
+    return sig, codegen
 
 
 @njit(cache=True, nogil=True)
-def event_weights(keys, first_row, n_rows, mode, fractions, cdf, out):
-    """Weights of rows ``first_row .. first_row + n_rows - 1`` in every stream.
+def event_weights(keys, first_row, n_rows, mode, thresholds, out):
+    """Weights of rows ``first_row .. first_row + n_rows - 1`` in every slot.
 
-    ``out`` has shape (n_rows, n_streams). Used by the tests and for
-    inspection; the binning kernel below draws the same numbers inline.
+    ``keys`` (G,) are the generator keys; ``out`` has shape (n_rows, 2 G):
+    column ``g`` is the high-half replicate of generator ``g``, column
+    ``G + g`` its low-half replicate. ``mode`` 0 draws Poisson(1) weights, 1
+    Bernoulli weights with the per-slot integer ``thresholds`` (2 G,).
+    Used by the tests and for inspection; the binning kernel draws the same
+    numbers.
     """
-    n_streams = keys.shape[0]
     for i in range(n_rows):
-        row = first_row + i
-        for r in range(n_streams):
-            out[i, r] = _weight(keys[r], row, mode != 0, fractions[r], cdf)
+        _draw_weights(keys, first_row + i, mode != 0, thresholds, out, i)
 
 
 @njit(cache=True, nogil=True)
@@ -116,9 +224,10 @@ def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes,
     """Counting sort of the binned codes (with their global rows) by ``(code >> 1) // key_div``.
 
     With ``key_div`` = radial bins, a key is one (plane, view) row of the
-    sinogram, so that the replicate increments that follow sweep a few tens
-    of kilobytes at a time instead of jumping over the whole bin-major array
-    (random access is what limits binning). Returns how many codes were kept.
+    sinogram, so that the replicate increments that follow sweep the working
+    array in order instead of jumping over all of it (random access is what
+    limits binning). Returns how many codes were kept; afterwards
+    ``key_counts[k]`` is the end of key ``k`` in the sorted arrays.
     """
     key_counts[:] = 0
     n = codes.shape[0]
@@ -139,41 +248,120 @@ def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes,
     return key_counts[n_keys - 1] if n_keys > 0 else 0
 
 
-@njit(cache=True, nogil=True)
-def accumulate_weighted_rows(codes, rows, count, keys, mode, fractions, cdf, prompts, delayed, totals):
-    """Add partitioned binned codes, each with its global row index, with their weight per stream.
-
-    ``codes``/``rows`` come from :func:`partition_codes` (``count`` of them);
-    ``prompts``/``delayed`` are int32 arrays of shape (n_bins * n_streams,),
-    bin-major (all streams of a bin side by side, so one event touches one
-    cache line whatever the number of replicates); ``totals`` (n_streams, 2)
-    collects the sums of weights of prompts and delayed; ``mode`` 0 draws
-    Poisson(1) weights (bootstrap), 1 Bernoulli(fraction) (thinning).
-    """
-    n_streams = keys.shape[0]
-    thin = mode != 0
-    for i in range(count):
-        c = codes[i]
-        row = rows[i]
-        base = (c >> 1) * n_streams
-        is_delayed = c & 1
-        target = delayed if is_delayed else prompts
-        # No branch on the weight itself: zero weights are added like any other.
-        for r in range(n_streams):
-            w = _weight(keys[r], row, thin, fractions[r], cdf)
-            target[base + r] += w
-            totals[r, is_delayed] += w
+#: Events whose weights are drawn together before they are added (fits in L1 with 20 replicates).
+_BLOCK = 256
+#: How many events ahead the working array is prefetched.
+_PREFETCH_AHEAD = 24
+#: A cell is emptied into the int32 output once it exceeds this (so a uint8 never overflows).
+SPILL_ABOVE = 255 - MAX_WEIGHT
 
 
 @njit(cache=True, nogil=True)
-def unweave(flat, n_streams, out):
-    """Bin-major ``flat[bin * n_streams + r]`` -> stream-major ``out[r, bin]``.
+def _accumulate_range(codes, rows, start, stop, keys, thin, thresholds, work_prompts, work_delayed,
+                      slot_stream, out_prompts, out_delayed, row_div, spilled_rows, totals):
+    n_slots = 2 * keys.shape[0]
+    weights = np.empty((_BLOCK, n_slots), np.uint8)
+    for i0 in range(start, stop, _BLOCK):
+        nb = min(_BLOCK, stop - i0)
+        # Draw first (a compute-bound loop), then add (a memory-bound loop whose loads the
+        # prefetches overlap).
+        for i in range(nb):
+            _draw_weights(keys, rows[i0 + i], thin, thresholds, weights, i)
+        for i in range(nb):
+            ahead = i0 + i + _PREFETCH_AHEAD
+            if ahead < stop:
+                c2 = codes[ahead]
+                _prefetch_for_write(work_delayed if c2 & 1 else work_prompts, (c2 >> 1) * n_slots)
+            c = codes[i0 + i]
+            is_delayed = c & 1
+            work = work_delayed if is_delayed else work_prompts
+            b = c >> 1
+            base = b * n_slots
+            top = 0
+            for s in range(n_slots):
+                v = work[base + s] + weights[i, s]
+                work[base + s] = v
+                top = max(top, v)
+                totals[is_delayed, s] += weights[i, s]
+            if top > SPILL_ABOVE:
+                # Rare (a bin with tens of events): empty the cell into the int32 output.
+                out = out_delayed if is_delayed else out_prompts
+                for s in range(n_slots):
+                    r = slot_stream[s]
+                    if r >= 0:
+                        out[r, b] += work[base + s]
+                    work[base + s] = 0
+                spilled_rows[b // row_div] = 1
 
-    One sequential read and ``n_streams`` sequential write streams (memory
-    bandwidth bound, unlike a strided numpy transpose of a tall array).
+
+@njit(cache=True, parallel=True)
+def accumulate_replicates(codes, rows, key_ends, n_parts, keys, mode, thresholds, work_prompts, work_delayed,
+                          slot_stream, out_prompts, out_delayed, row_div, spilled_rows, totals):
+    """Add partitioned binned codes, each with its global row index, with their weight per replicate.
+
+    Parameters
+    ----------
+    codes, rows : ndarray of int64
+        From :func:`partition_codes`: ``flat_bin << 1 | delayed`` sorted by
+        sinogram row, and the global row index of each event.
+    key_ends : ndarray of int64
+        End of every sinogram row's events in ``codes`` (``key_counts`` of
+        :func:`partition_codes`); the work is split at these boundaries, so
+        parallel parts never touch the same bin.
+    n_parts : int
+        Parts worked on in parallel.
+    keys : ndarray of uint64, shape (G,)
+        Generator keys; slot ``g`` is the high-half replicate of generator
+        ``g``, slot ``G + g`` the low-half one.
+    mode : int
+        0 Poisson(1) weights (bootstrap), 1 Bernoulli weights (thinning) with
+        the per-slot integer ``thresholds`` (2 G,).
+    work_prompts, work_delayed : ndarray of uint8, shape (n_bins * 2 G,)
+        Bin-major working counts (all slots of a bin side by side, so an
+        event touches one cache line whatever the number of replicates).
+    slot_stream : ndarray of int64, shape (2 G,)
+        Replicate (row of ``out_*``) of every slot, -1 for an unused slot.
+    out_prompts, out_delayed : ndarray of int32, shape (replicates, n_bins)
+        Where full working cells are emptied; :func:`unweave_add` adds the rest.
+    row_div : int
+        Bins per sinogram row; ``spilled_rows[bin // row_div]`` is set when a
+        cell of that row was emptied into ``out_*``.
+    totals : ndarray of int64, shape (n_parts, 2, 2 G)
+        Sums of the weights of prompts and delayed events per part and slot.
     """
-    n_bins = out.shape[1]
-    for b in range(n_bins):
-        base = b * n_streams
-        for r in range(n_streams):
-            out[r, b] = flat[base + r]
+    count = key_ends[key_ends.shape[0] - 1] if key_ends.shape[0] > 0 else 0
+    n_keys = key_ends.shape[0]
+    for part in prange(n_parts):
+        # Part boundaries at sinogram-row boundaries: parts write disjoint bins.
+        k0 = (n_keys * part) // n_parts
+        k1 = (n_keys * (part + 1)) // n_parts
+        start = key_ends[k0 - 1] if k0 > 0 else 0
+        stop = key_ends[k1 - 1] if k1 > 0 else 0
+        if stop > count:
+            stop = count
+        _accumulate_range(codes, rows, start, stop, keys, mode != 0, thresholds, work_prompts, work_delayed,
+                          slot_stream, out_prompts, out_delayed, row_div, spilled_rows, totals[part])
+
+
+@njit(cache=True, parallel=True)
+def unweave_add(work, n_slots, slot_stream, row_div, spilled_rows, out):
+    """Bin-major working counts ``work[bin * n_slots + s]`` -> replicate-major ``out[slot_stream[s], bin]``.
+
+    Rows of the sinogram where a cell was emptied early (``spilled_rows``)
+    are added to ``out``; the others are written (first touch of fresh
+    pages with no read). One sequential read and one sequential write per
+    replicate; sinogram rows are shared among the threads.
+    """
+    n_rows = spilled_rows.shape[0]
+    for k in prange(n_rows):
+        add = spilled_rows[k] != 0
+        for b in range(k * row_div, (k + 1) * row_div):
+            base = b * n_slots
+            for s in range(n_slots):
+                r = slot_stream[s]
+                if r >= 0:
+                    v = np.int32(work[base + s])
+                    if add:
+                        out[r, b] += v
+                    else:
+                        out[r, b] = v

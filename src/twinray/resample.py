@@ -19,10 +19,12 @@ memory:
   as scans of ``P`` times the duration, so their mean image estimates the
   same concentration and only the noise changes.
 
-Weights come from a counter-based generator keyed on ``(seed, replicate,
-global row index)`` (:mod:`twinray._resample_kernels`), so a replicate is the
-same whatever the batch size, the order batches are processed in, or the
-number of workers.
+Weights come from a counter-based generator: the weight of an event in a
+replicate is a pure function of ``(seed, fraction, replicate, global row
+index)`` (:mod:`twinray._resample_kernels`, which also states the resolution
+of the draws), so a replicate is the same whatever the batch size, the order
+batches are processed in, the number of replicates asked for, or the number
+of workers.
 
 References
 ----------
@@ -136,22 +138,78 @@ def parse_fractions(text: str) -> tuple:
         raise TwinrayInputError(f"--fraction must be numbers like 0.1,0.25,0.5, got '{text}'") from None
 
 
-def stream_keys(seed: int, fractions, replicates: int) -> tuple:
-    """Generator keys, fractions and replicate numbers of every stream.
+@dataclasses.dataclass(frozen=True)
+class ReplicatePlan:
+    """Which generator draws the weights of which replicate.
 
-    Stream ``f * 2**32 + r`` is replicate ``r`` of fraction number ``f``; its
-    key depends only on the seed and these two numbers, so replicate ``r`` is
-    the same whatever the total number of replicates asked for.
+    Replicates ``2p`` and ``2p + 1`` of fraction number ``f`` share generator
+    ``(f, p)`` (high and low 32 bits of its output); replicate ``r`` of
+    fraction ``f`` is stream ``f * replicates + r``.
+
+    Attributes
+    ----------
+    keys : ndarray of uint64, shape (generators,)
+        Starting state of every generator.
+    thresholds : ndarray of int64, shape (generators,)
+        Thinning threshold of every generator (``round(P * 2**32)``; unused by the bootstrap).
+    high_stream, low_stream : ndarray of int64, shape (generators,)
+        Stream that takes the high and the low half; -1 for none (odd replicate counts).
+    fractions : ndarray of float64, shape (streams,)
+        Thinning probability of every stream (1 for the bootstrap).
+    replicate : ndarray of int64, shape (streams,)
+        Replicate number within its fraction.
+    """
+
+    keys: np.ndarray
+    thresholds: np.ndarray
+    high_stream: np.ndarray
+    low_stream: np.ndarray
+    fractions: np.ndarray
+    replicate: np.ndarray
+
+    @property
+    def n_generators(self) -> int:
+        return len(self.keys)
+
+    @property
+    def n_streams(self) -> int:
+        return len(self.fractions)
+
+    def slots(self, g0: int, g1: int) -> tuple:
+        """Keys, per-slot thresholds, per-slot streams (relative to the first) and the stream range
+        of generators ``g0 .. g1 - 1``: slot ``g`` is the high half of generator ``g0 + g``, slot
+        ``(g1 - g0) + g`` its low half."""
+        keys = np.ascontiguousarray(self.keys[g0:g1])
+        thresholds = np.concatenate([self.thresholds[g0:g1], self.thresholds[g0:g1]])
+        streams = np.concatenate([self.high_stream[g0:g1], self.low_stream[g0:g1]])
+        s0 = int(streams[streams >= 0].min())
+        s1 = int(streams.max()) + 1
+        local = np.where(streams >= 0, streams - s0, -1).astype(np.int64)
+        return keys, thresholds, local, s0, s1
+
+
+def replicate_plan(seed: int, fractions, replicates: int) -> ReplicatePlan:
+    """Generator keys and the replicate each half of their output goes to.
+
+    The key of generator ``(f, p)`` depends only on the seed, the fraction
+    number and ``p``, so replicate ``r`` is the same whatever the total
+    number of replicates asked for.
     """
     if isinstance(seed, bool) or int(seed) != seed or seed < 0:
         raise TwinrayInputError(f"--seed must be an integer >= 0, got {seed}")
-    keys, frac, rep = [], [], []
+    replicates = int(replicates)
+    keys, thresholds, high, low, frac, rep = [], [], [], [], [], []
     for f, p in enumerate(fractions):
-        for r in range(int(replicates)):
-            keys.append(kernels.stream_key(int(seed), (f << 32) + r))
-            frac.append(p)
-            rep.append(r)
-    return np.array(keys, dtype=np.uint64), np.array(frac, dtype=np.float64), np.array(rep, dtype=np.int64)
+        for pair in range((replicates + 1) // 2):
+            keys.append(kernels.stream_key(int(seed), (f << 32) + pair))
+            thresholds.append(kernels.thin_threshold(p))
+            high.append(f * replicates + 2 * pair)
+            low.append(f * replicates + 2 * pair + 1 if 2 * pair + 1 < replicates else -1)
+        frac += [p] * replicates
+        rep += list(range(replicates))
+    return ReplicatePlan(keys=np.array(keys, dtype=np.uint64), thresholds=np.array(thresholds, dtype=np.int64),
+                         high_stream=np.array(high, dtype=np.int64), low_stream=np.array(low, dtype=np.int64),
+                         fractions=np.array(frac, dtype=np.float64), replicate=np.array(rep, dtype=np.int64))
 
 
 def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: str = "bootstrap",
@@ -178,25 +236,37 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     rebin, scanner, batch_size, energy_window
         As in :func:`twinray.binning.bin_events`.
     memory_bytes : int
-        Budget for the bin-major working copy of the replicate sinograms
-        (the returned stream-major sinograms take as much again); with more
-        replicates than fit, the events are read once per group of replicates.
+        Budget for the bin-major working counts (one byte per replicate and
+        bin, prompts and delayed; the returned int32 sinograms take four
+        times as much); with more replicates than fit, the events are read
+        once per group of replicate pairs.
     progress : callable, optional
         Called with the number of rows after each batch (of each pass).
 
     Returns
     -------
     ReplicateState
+
+    Notes
+    -----
+    Working counts are one byte per (bin, replicate), all replicates of a
+    bin side by side; a cell close to overflowing is emptied into the int32
+    output, and what remains is added at the end. Events are sorted by
+    sinogram row before their weights are added, and the rows are shared
+    among the numba threads.
     """
+    import numba
+
     fractions = check_resampling(mode, replicates, fractions, min_replicates=1)
     source = events if isinstance(events, EventSource) else open_events(events, scanner)
     if geometry is None:
         geometry = sinogram_geometry(source.scanner, rebin)
-    keys, stream_fraction, stream_replicate = stream_keys(seed, fractions, replicates)
-    n_streams = len(keys)
+    plan = replicate_plan(seed, fractions, replicates)
+    n_streams = plan.n_streams
     with_delayed = source.has_delayed
-    per_stream = geometry.n_bins * 4 * (2 if with_delayed else 1)
-    group = max(1, min(n_streams, int(memory_bytes // max(per_stream, 1))))
+    per_generator = geometry.n_bins * 2 * (2 if with_delayed else 1)
+    group = max(1, min(plan.n_generators, int(memory_bytes // max(per_generator, 1))))
+    thin = 0 if mode == "bootstrap" else 1
 
     frames = None if frame is None else [tuple(frame)]
     counting = empty_state(geometry, frames, with_delayed=with_delayed)
@@ -212,21 +282,24 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     prompts = np.zeros((n_streams,) + geometry.shape, np.int32)
     delayed = np.zeros((n_streams,) + geometry.shape, np.int32) if with_delayed else None
     totals = np.zeros((n_streams, 2), np.int64)
+    n_rows = geometry.planes * geometry.views          # sinogram rows (plane, view)
+    n_parts = max(1, numba.get_num_threads())
     passes = 0
-    for g0 in range(0, n_streams, group):
-        g1 = min(n_streams, g0 + group)
-        m = g1 - g0
-        # Bin-major layout: all replicates of a bin side by side (one cache line per event).
-        p_flat = np.zeros(geometry.n_bins * m, np.int32)
-        d_flat = np.zeros(geometry.n_bins * m if with_delayed else 1, np.int32)
-        group_totals = np.zeros((m, 2), np.int64)
+    for g0 in range(0, plan.n_generators, group):
+        g1 = min(plan.n_generators, g0 + group)
+        keys, thresholds, slot_stream, s0, s1 = plan.slots(g0, g1)
+        m = s1 - s0
+        n_slots = len(slot_stream)
+        out_p = prompts[s0:s1].reshape(m, geometry.n_bins)
+        out_d = delayed[s0:s1].reshape(m, geometry.n_bins) if with_delayed else np.zeros((m, 1), np.int32)
+        work_p = np.zeros(geometry.n_bins * n_slots, np.uint8)
+        work_d = np.zeros(geometry.n_bins * n_slots if with_delayed else 1, np.uint8)
+        spilled_rows = np.zeros(n_rows, np.uint8)
+        part_totals = np.zeros((n_parts, 2, n_slots), np.int64)
         # The ordinary binner classifies (same lookup tables, same accounting); only the
         # accumulation differs.
         classifier = _Binner(empty_state(geometry, frames, with_delayed=with_delayed), window)
-        # Events are partitioned by sinogram row (plane, view) before the weighted
-        # increments, so that those sweep a few tens of kilobytes at a time.
-        n_keys = geometry.planes * geometry.views
-        key_counts = np.zeros(n_keys + 1, np.int64)
+        key_counts = np.zeros(n_rows + 1, np.int64)
         sorted_codes = np.zeros(0, np.int64)
         sorted_rows = np.zeros(0, np.int64)
         for first_row, arrays in iter_event_batches(source, columns, batch_size, prefetch=2):
@@ -234,23 +307,27 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
             if len(sorted_codes) < len(codes):
                 sorted_codes = np.empty(len(codes), np.int64)
                 sorted_rows = np.empty(len(codes), np.int64)
-            kept = kernels.partition_codes(codes, np.int64(first_row), geometry.radial_bins, n_keys, key_counts,
-                                           sorted_codes, sorted_rows)
-            kernels.accumulate_weighted_rows(sorted_codes, sorted_rows, kept, keys[g0:g1],
-                                             0 if mode == "bootstrap" else 1, stream_fraction[g0:g1],
-                                             kernels.POISSON1_CDF, p_flat, d_flat, group_totals)
+            kernels.partition_codes(codes, np.int64(first_row), geometry.radial_bins, n_rows, key_counts,
+                                    sorted_codes, sorted_rows)
+            kernels.accumulate_replicates(sorted_codes, sorted_rows, key_counts[:n_rows], n_parts, keys, thin,
+                                          thresholds, work_p, work_d, slot_stream, out_p, out_d,
+                                          geometry.radial_bins, spilled_rows, part_totals)
             if progress is not None:
                 progress(len(codes))
         passes += 1
         if g0 == 0:
             counting.counts[:] = classifier.state.counts
-        kernels.unweave(p_flat, m, prompts[g0:g1].reshape(m, geometry.n_bins))
+        kernels.unweave_add(work_p, n_slots, slot_stream, geometry.radial_bins, spilled_rows, out_p)
         if with_delayed:
-            kernels.unweave(d_flat, m, delayed[g0:g1].reshape(m, geometry.n_bins))
-        totals[g0:g1] = group_totals
+            kernels.unweave_add(work_d, n_slots, slot_stream, geometry.radial_bins, spilled_rows, out_d)
+        slot_totals = part_totals.sum(axis=0)
+        for s, stream in enumerate(slot_stream):
+            if stream >= 0:
+                totals[s0 + stream] = slot_totals[:, s]
+        del work_p, work_d
     frame_s = tuple(frame) if frame is not None else (0.0, float(source.duration_s or 0.0))
     return ReplicateState(geometry=geometry, frame_s=frame_s, mode=mode, seed=int(seed),
-                          fractions=stream_fraction, replicate=stream_replicate, prompts=prompts,
+                          fractions=plan.fractions, replicate=plan.replicate, prompts=prompts,
                           delayed=delayed, totals=totals, accounting=counting.accounting(0), passes=passes)
 
 
@@ -271,11 +348,15 @@ def replicate_weights(seed: int, mode: str, fractions, replicates: int, first_ro
 
     The same numbers :func:`bin_replicates` uses (for checks and inspection).
     """
-    fractions = check_resampling(mode, replicates, fractions)
-    keys, frac, _ = stream_keys(seed, fractions, replicates)
-    out = np.zeros((int(n_rows), len(keys)), np.int64)
-    kernels.event_weights(keys, np.int64(first_row), int(n_rows), 0 if mode == "bootstrap" else 1, frac,
-                          kernels.POISSON1_CDF, out)
+    fractions = check_resampling(mode, replicates, fractions, min_replicates=1)
+    plan = replicate_plan(seed, fractions, replicates)
+    keys, thresholds, slot_stream, s0, s1 = plan.slots(0, plan.n_generators)
+    by_slot = np.zeros((int(n_rows), len(slot_stream)), np.int64)
+    kernels.event_weights(keys, np.int64(first_row), int(n_rows), 0 if mode == "bootstrap" else 1, thresholds,
+                          by_slot)
+    out = np.zeros((int(n_rows), plan.n_streams), np.int64)
+    used = slot_stream >= 0
+    out[:, slot_stream[used] + s0] = by_slot[:, used]
     return out
 
 
