@@ -118,7 +118,7 @@ def test_point_source_lands_on_its_sinusoid(benchtop_scanner, rng, x0, y0):
     assert np.all(np.abs(centroid - expected) <= width / 2), np.abs(centroid - expected).max()
 
 
-@pytest.mark.parametrize("accumulate", ["direct", "partitioned"])
+@pytest.mark.parametrize("accumulate", ["lean", "direct", "partitioned"])
 def test_matches_numpy_reference(rng, accumulate):
     """The numba kernels equal a plain numpy binner of the same rules, frames and energy window."""
     cols = random_events(SCANNER, 30000, rng, energies=True, invalid_fraction=0.05)
@@ -248,7 +248,7 @@ def _events(spec):
 
 
 @SETTINGS
-@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES), accumulate=st.sampled_from(["direct", "partitioned"]))
+@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES), accumulate=st.sampled_from(["lean", "direct", "partitioned"]))
 def test_counts_conserved_and_accounting_exact(spec, frames, accumulate):
     cols = _events(spec)
     state = bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate=accumulate)
@@ -397,3 +397,26 @@ def test_frame_storage_does_not_change_the_sinograms(spec, frames, limit, cut):
     assert not held.is_dense                 # handing out frames leaves the storage as it is
     assert_same_state(held, dense)           # .prompts makes it dense
     assert held.is_dense
+
+
+@SETTINGS
+@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES.map(lambda f: f[:1])))
+def test_lean_kernels_on_two_threads_equal_the_reference(spec, frames):
+    """The lean path split between two threads (forced here even for small batches) bins like the oracle."""
+    from twinray import binning
+
+    saved = binning._THREADED_BATCH, binning._usable_cores
+    binning._THREADED_BATCH, binning._usable_cores = 1, (lambda: 2)
+    try:
+        cols = _events(spec)
+        state = bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate="lean")
+    finally:
+        binning._THREADED_BATCH, binning._usable_cores = saved
+    window = SCANNER.energy_window_kev if spec["energies"] else None
+    prompts, delayed, counts = reference_bin(cols, GEOMETRY, frames, window)
+    np.testing.assert_array_equal(state.prompts, prompts)
+    if state.delayed is not None:
+        np.testing.assert_array_equal(state.delayed, delayed)
+    else:
+        assert "delayed" not in cols and not np.any(delayed)
+    np.testing.assert_array_equal(state.counts, counts)

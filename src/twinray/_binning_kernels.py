@@ -333,3 +333,123 @@ def split_by_frame(codes, n_bins, offsets, out):
             hi = lo + span
         out[fill[k]] = np.uint32(c - lo)
         fill[k] += 1
+
+
+# ---- the lean path: one frame window, arithmetic-only classification ------------------------------------------
+#
+# The table kernels above spend much of their time waiting: on a table entry whose address depends on
+# another table entry, and on selects that the compiler turns into jumps the processor mispredicts (about
+# a third of the events of a study are rejected, at random). The lean kernels compute the ring and in-ring
+# index by multiplication, look up both ring orders at once, decide with integer arithmetic and a small
+# table of first reasons, and count in a separate pass over the codes.
+
+#: Slots of the tally of one batch: 0 prompts, 1 delayed, ``row * 16 + reason`` for a rejection
+#: (row 0: in the frame, 1: outside it).
+TALLY_SLOTS = 32
+
+
+def lean_tables(ring_of, position_of, crystals_per_ring, by_sum, half, by_diff, plane_of_rings):
+    """Tables of the lean kernels, or None when the geometry does not allow them.
+
+    Returns ``(ring_multiplier, by_sum, diff_flat, plane_flat, first_reason)``:
+    ``ring = (crystal * ring_multiplier) >> 32`` (checked exact for every
+    crystal id, in place of a division), the difference table flattened with
+    the half-turn of index sum ``t`` being ``t >= crystals_per_ring``
+    (checked), the ring-pair table flattened, and the first rejection reason
+    of every combination of the six reason flags (bit order: invalid crystal,
+    outside frame, energy, no LOR, ring difference, radial FOV).
+    """
+    n = int(crystals_per_ring)
+    ids = np.arange(len(ring_of), dtype=np.int64)
+    multiplier = (1 << 32) // n + 1
+    if not np.array_equal((ids * multiplier) >> 32, ring_of) or not np.array_equal(ids - ring_of * n, position_of):
+        return None
+    sums = np.arange(len(half))
+    if not np.array_equal(np.asarray(half), (sums >= n).astype(np.asarray(half).dtype)):
+        return None
+    order = (INVALID_CRYSTAL, OUTSIDE_FRAME, ENERGY, NO_LOR, RING_DIFF, RADIAL_FOV)
+    first_reason = np.zeros(64, np.int64)
+    for flags in range(1, 64):
+        first_reason[flags] = order[(flags & -flags).bit_length() - 1]
+    return (np.int64(multiplier), np.ascontiguousarray(by_sum, dtype=np.int32),
+            np.ascontiguousarray(np.asarray(by_diff).reshape(-1), dtype=np.int32),
+            np.ascontiguousarray(np.asarray(plane_of_rings).reshape(-1), dtype=np.int32), first_reason)
+
+
+@njit(cache=True, nogil=True)
+def classify_lean(crystal_a, crystal_b, time_ns, use_time, t_start, t_end, delayed, use_delayed, energy_a,
+                  energy_b, use_energy, e_lo, e_hi, n_crystals, ring_multiplier, crystals_per_ring, by_sum,
+                  diff_flat, plane_flat, rings, bins_per_plane, first_reason, codes):
+    """Codes of a batch for one frame ``[t_start, t_end)`` ns: ``flat_bin << 1 | is_delayed``, or minus a tally slot.
+
+    A rejected event gets ``-(row * 16 + reason)``, ``row`` 1 when its time
+    is outside the frame, ``reason`` the first of data contract section 5
+    that applies (the same decisions as :func:`classify_event`; the tests
+    hold the two paths equal).
+    """
+    one = np.int64(1)
+    n_cr = np.int64(crystals_per_ring)
+    width = 2 * n_cr - 1
+    limit = np.uint64(n_crystals)
+    for i in range(crystal_a.shape[0]):
+        a0 = np.int64(crystal_a[i])
+        b0 = np.int64(crystal_b[i])
+        valid = np.int64((np.uint64(a0) < limit) & (np.uint64(b0) < limit))
+        a = a0 * valid                      # crystal 0 stands in for an invalid id
+        b = b0 * valid
+        ra = (a * ring_multiplier) >> 32
+        rb = (b * ring_multiplier) >> 32
+        pa = a - ra * n_cr
+        pb = b - rb * n_cr
+        t = pa + pb
+        part = np.int64(diff_flat[np.int64(t >= n_cr) * width + (n_cr - 1) + pa - pb])
+        base = np.int64(by_sum[t])
+        plane_ab = np.int64(plane_flat[ra * rings + rb])
+        plane_ba = np.int64(plane_flat[rb * rings + ra])
+        mark = part >> 63                   # -1 for the marks (-1 no LOR, -2 outside the radial FOV)
+        inplane = part + (base & ~mark)
+        end1_is_a = part & one
+        plane = plane_ab * end1_is_a + plane_ba * (one - end1_is_a)
+        is_delayed = np.int64(delayed[i]) if use_delayed else np.int64(0)
+        inside = one
+        if use_time:
+            tt = time_ns[i]
+            inside = np.int64((tt >= t_start) & (tt < t_end))
+        energy_ok = one
+        if use_energy:
+            ea = energy_a[i]
+            eb = energy_b[i]
+            energy_ok = np.int64((ea >= e_lo) & (ea <= e_hi) & (eb >= e_lo) & (eb <= e_hi))
+        flags = ((one - valid) | ((one - inside) << 1) | ((one - energy_ok) << 2)
+                 | (np.int64(inplane == -1) << 3) | ((plane >> 63) & 16) | (np.int64(inplane == -2) << 5))
+        keep = -np.int64(flags == 0)        # all ones when binned
+        code = ((plane * bins_per_plane + (inplane >> 1)) << 1) | is_delayed
+        rejected = -((one - inside) * 16 + first_reason[flags])
+        codes[i] = (code & keep) | (rejected & ~keep)
+
+
+@njit(cache=True, nogil=True)
+def tally_codes(codes, tally):
+    """Add the codes of a batch to ``tally`` (4, TALLY_SLOTS): slot 0 prompts, 1 delayed, else minus the code.
+
+    Four copies of the tally, taken in turn, so that equal neighbouring
+    codes do not wait on each other's increments; the caller sums them.
+    """
+    for i in range(codes.shape[0]):
+        c = codes[i]
+        neg = c >> 63
+        tally[i & 3, ((-c) & neg) | ((c & 1) & ~neg)] += 1
+
+
+@njit(cache=True, nogil=True)
+def accumulate_share(codes, prompts_flat, delayed_flat, thread, n_threads):
+    """Add the binned codes of flat bins ``bin % n_threads == thread`` (1 or 2 threads: no element is
+    written by two threads)."""
+    mask = n_threads - 1
+    for i in range(codes.shape[0]):
+        c = codes[i]
+        if c >= 0 and ((c >> 1) & mask) == thread:
+            if c & 1:
+                delayed_flat[c >> 1] += 1
+            else:
+                prompts_flat[c >> 1] += 1

@@ -19,7 +19,7 @@ from decimal import Decimal
 import numpy as np
 
 from . import _binning_kernels as kernels
-from .accounting import FIELDS, OUTSIDE_FRAME, READ, INVALID_CRYSTAL, Accounting
+from .accounting import DELAYED, FIELDS, INVALID_CRYSTAL, OUTSIDE_FRAME, PROMPTS, READ, Accounting
 from .errors import TwinrayInputError
 from .events import DEFAULT_BATCH_SIZE, EventSource, iter_event_batches, open_events
 from .geometry import SinogramGeometry, sinogram_geometry
@@ -318,9 +318,32 @@ def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = Tr
     return BinningState(geometry, frames_s, prompts, delayed, counts)
 
 
-#: How binned events are added to the sinograms: "direct" (increments in event order) or
-#: "partitioned" (counting sort by plane first, for cache locality). Chosen by bench/bench_binning.py.
-ACCUMULATE = "direct"
+#: How events are binned: "lean" (arithmetic classification, two threads; for single-frame dense
+#: states, else "direct"), "direct" (table classification, increments in
+#: event order) or "partitioned" (the same, counting sort by plane before the increments). All give the
+#: same result; bench/bench_binning.py compares them.
+ACCUMULATE = "lean"
+
+#: Smallest batch that is split between two threads.
+_THREADED_BATCH = 1 << 16
+_POOL = None
+
+
+def _thread_pool():
+    """Two worker threads for the lean kernels (which release the GIL), made on first use."""
+    global _POOL
+    if _POOL is None:
+        from concurrent.futures import ThreadPoolExecutor
+        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="twinray-bin")
+    return _POOL
+
+
+def _usable_cores() -> int:
+    import os
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:          # not on Linux
+        return os.cpu_count() or 1
 
 
 class _Binner:
@@ -329,7 +352,7 @@ class _Binner:
     def __init__(self, state: BinningState, energy_window, accumulate: str | None = None):
         g = state.geometry
         self.accumulate = accumulate or ACCUMULATE
-        if self.accumulate not in ("direct", "partitioned"):
+        if self.accumulate not in ("lean", "direct", "partitioned"):
             raise ValueError(f"unknown accumulate mode {self.accumulate!r}")
         self.state = state
         self.g = g
@@ -368,6 +391,16 @@ class _Binner:
         self.no_time = np.zeros(0, np.int64)
         self.no_flag = np.zeros(0, np.bool_)
         self.no_energy = np.zeros(0, np.float32)
+        self.lean = None
+        if self.accumulate == "lean" and state.is_dense and state.n_frames == 1:
+            self.lean = kernels.lean_tables(self.ring_of, self.position_of, g.scanner.crystals_per_ring,
+                                            self.by_sum, self.half, self.by_diff,
+                                            self.plane_of_rings) if self.factored else None
+        if self.lean is None and self.accumulate == "lean":
+            self.accumulate = "direct"          # many frames, or a geometry the lean tables do not fit
+        if self.lean is not None:
+            self.tally = np.zeros((4, kernels.TALLY_SLOTS), np.int64)
+            self.n_threads = 2 if _usable_cores() >= 2 else 1
 
     def add(self, arrays: dict) -> None:
         ca = _column(arrays, "crystal_a", np.int32)
@@ -395,6 +428,9 @@ class _Binner:
                 self.sorted_codes = np.empty(n, np.int64)
         codes = self.codes[:n]
         sc = self.g.scanner
+        if self.lean is not None:
+            self._add_lean(ca, cb, t, d, ea, eb, codes)
+            return
         kernels.classify_batch(ca, cb, t, self.use_time, d, d.size > 0, ea, eb, self.use_energy,
                                self.e_lo, self.e_hi, self.starts, self.ends, sc.n_crystals, self.ring_of,
                                self.position_of, self.inplane_code, self.factored, self.by_sum, self.half,
@@ -411,6 +447,47 @@ class _Binner:
         else:
             kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,
                                      self.n_keys, self.key_counts, self.sorted_codes)
+
+
+    def _add_lean(self, ca, cb, t, d, ea, eb, codes) -> None:
+        """Lean kernels, on two threads for large batches: each classifies half the batch, then each adds
+        the events of its own half of the bins (even or odd flat index); one thread tallies meanwhile."""
+        n = len(ca)
+        multiplier, by_sum, diff_flat, plane_flat, first_reason = self.lean
+        sc = self.g.scanner
+
+        def classify(lo, hi):
+            kernels.classify_lean(ca[lo:hi], cb[lo:hi], t[lo:hi] if self.use_time else t, self.use_time,
+                                  self.starts[0], self.ends[0], d[lo:hi] if d.size else d, d.size > 0,
+                                  ea[lo:hi] if self.use_energy else ea, eb[lo:hi] if self.use_energy else eb,
+                                  self.use_energy, self.e_lo, self.e_hi, sc.n_crystals, multiplier,
+                                  sc.crystals_per_ring, by_sum, diff_flat, plane_flat, sc.rings,
+                                  self.bins_per_plane, first_reason, codes[lo:hi])
+
+        self.tally[:] = 0
+        if self.n_threads == 1 or n < _THREADED_BATCH:
+            classify(0, n)
+            kernels.tally_codes(codes, self.tally)
+            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
+        else:
+            pool = _thread_pool()
+            half = n // 2
+            for f in [pool.submit(classify, 0, half), pool.submit(classify, half, n)]:
+                f.result()
+            jobs = [pool.submit(kernels.accumulate_share, codes, self.prompts_flat, self.delayed_flat, k, 2)
+                    for k in range(2)]
+            kernels.tally_codes(codes, self.tally)
+            for f in jobs:
+                f.result()
+        # Slots 0 and 1 are the binned prompts and delayed; the rest is row * 16 + reason.
+        tally = self.tally.sum(axis=0)
+        batch = np.zeros_like(self.state.counts)
+        batch[:, :len(FIELDS)] = tally.reshape(2, 16)[:, :len(FIELDS)]
+        batch[0, PROMPTS] = tally[0]
+        batch[0, DELAYED] = tally[1]
+        batch[:, READ] = 0
+        batch[:, READ] = batch.sum(axis=1)
+        self.state.counts += batch
 
 
 _TABLES_CACHE: dict = {}
