@@ -126,7 +126,7 @@ def raw_decode(path: Path, columns) -> tuple:
     return time.perf_counter() - t0, time.process_time() - c0
 
 
-def library_bin(path: Path, frames=None, prefetch=2, accumulate="direct") -> tuple:
+def library_bin(path: Path, frames=None, prefetch=2, accumulate="lean") -> tuple:
     from twinray import binning
 
     saved = binning.ACCUMULATE
@@ -212,6 +212,33 @@ def kernels_alone(path: Path, n_max: int = 8_000_000) -> dict:
                                 minlength=g.n_bins)
         times.append(time.thread_time() - t0)
     out["numpy_lut_bincount"] = {"total_Mev_s": n / min(times) / 1e6}
+    # The lean kernels (the default path), one thread: classify, tally, increments.
+    state = empty_state(g, None, True)
+    b = _Binner(state, None, "lean")
+    multiplier, by_sum, diff_flat, plane_flat, first_reason = b.lean
+    tally = np.zeros((4, 32), np.int64)
+    times = []
+    for _ in range(3):
+        codes = np.empty(BATCH, np.int64)
+        t_classify = t_tally = t_acc = 0.0
+        for s in range(0, n, BATCH):
+            a1, b1, d1 = ca[s:s + BATCH], cb[s:s + BATCH], d[s:s + BATCH]
+            c = codes[:len(a1)]
+            t0 = time.thread_time()
+            k.classify_lean(a1, b1, b.no_time, False, b.starts, b.ends, d1, True, b.no_energy, b.no_energy, False,
+                            b.e_lo, b.e_hi, g.scanner.n_crystals, multiplier, g.scanner.crystals_per_ring, by_sum,
+                            diff_flat, plane_flat, g.scanner.rings, b.bins_per_plane, b.n_bins, first_reason, c)
+            t1 = time.thread_time()
+            k.tally_codes(c, b.n_bins, tally)
+            t2 = time.thread_time()
+            k.accumulate_share(c, b.prompts_flat, b.delayed_flat, 0, 1)
+            t_classify += t1 - t0
+            t_tally += t2 - t1
+            t_acc += time.thread_time() - t2
+        times.append((t_classify, t_tally, t_acc))
+    tc, tt, ta = min(times, key=sum)
+    out["lean"] = {"classify_Mev_s": n / tc / 1e6, "tally_Mev_s": n / tt / 1e6, "accumulate_Mev_s": n / ta / 1e6,
+                   "total_Mev_s": n / (tc + tt + ta) / 1e6}
     out["events"] = n
     return out
 
@@ -273,16 +300,19 @@ def main(argv=None):
     cols_t = ["time_ns"] + cols_nt
     raw_decode(small, cols_t)                    # warm the page cache
     library_bin(small, None)                     # load compiled kernels
+    library_bin(small, None, accumulate="direct")
     library_bin(small, None, accumulate="partitioned")
     library_bin(small, [(0.0, 1e6)])
     load_before = os.getloadavg()
-    rows = {"raw_nt": [], "lib_nt": [], "raw_t": [], "lib_t": [], "lib_nt_noprefetch": [], "lib_nt_partitioned": []}
+    rows = {"raw_nt": [], "lib_nt": [], "raw_t": [], "lib_t": [], "lib_nt_noprefetch": [], "lib_nt_direct": [],
+            "lib_nt_partitioned": []}
     state = None
     for _ in range(args.repeats):
         rows["raw_nt"].append(raw_decode(small, cols_nt))
         dt, state = library_bin(small, None)
         rows["lib_nt"].append(dt)
         rows["lib_nt_noprefetch"].append(library_bin(small, None, prefetch=0)[0])
+        rows["lib_nt_direct"].append(library_bin(small, None, accumulate="direct")[0])
         rows["lib_nt_partitioned"].append(library_bin(small, None, accumulate="partitioned")[0])
         rows["raw_t"].append(raw_decode(small, cols_t))
         rows["lib_t"].append(library_bin(small, [(0.0, 1e6)])[0])
@@ -297,6 +327,7 @@ def main(argv=None):
               "ratio_lib_vs_raw_no_time": med["raw_nt"] / med["lib_nt"],
               "ratio_lib_vs_raw_with_time": med["raw_t"] / med["lib_t"],
               "ratio_lib_noprefetch_vs_raw_no_time": med["raw_nt"] / med["lib_nt_noprefetch"],
+              "ratio_lib_direct_vs_raw_no_time": med["raw_nt"] / med["lib_nt_direct"],
               "ratio_lib_partitioned_vs_raw_no_time": med["raw_nt"] / med["lib_nt_partitioned"],
               "load_average_1min_before_after": [load_before[0], os.getloadavg()[0]],
               "accounting": acc.to_dict()}

@@ -400,8 +400,8 @@ def test_frame_storage_does_not_change_the_sinograms(spec, frames, limit, cut):
 
 
 @SETTINGS
-@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES.map(lambda f: f[:1])))
-def test_lean_kernels_on_two_threads_equal_the_reference(spec, frames):
+@given(spec=EVENTS, frames=st.one_of(st.none(), FRAMES), sparse=st.booleans())
+def test_lean_kernels_on_two_threads_equal_the_reference(spec, frames, sparse):
     """The lean path split between two threads (forced here even for small batches) bins like the oracle."""
     from twinray import binning
 
@@ -409,7 +409,8 @@ def test_lean_kernels_on_two_threads_equal_the_reference(spec, frames):
     binning._THREADED_BATCH, binning._usable_cores = 1, (lambda: 2)
     try:
         cols = _events(spec)
-        state = bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate="lean")
+        state = empty_state(GEOMETRY, frames, "delayed" in cols, sparse=sparse and frames is not None)
+        bin_event_arrays(cols, GEOMETRY, frames=frames, accumulate="lean", state=state)
     finally:
         binning._THREADED_BATCH, binning._usable_cores = saved
     window = SCANNER.energy_window_kev if spec["energies"] else None

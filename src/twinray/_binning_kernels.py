@@ -343,9 +343,6 @@ def split_by_frame(codes, n_bins, offsets, out):
 # index by multiplication, look up both ring orders at once, decide with integer arithmetic and a small
 # table of first reasons, and count in a separate pass over the codes.
 
-#: Slots of the tally of one batch: 0 prompts, 1 delayed, ``row * 16 + reason`` for a rejection
-#: (row 0: in the frame, 1: outside it).
-TALLY_SLOTS = 32
 
 
 def lean_tables(ring_of, position_of, crystals_per_ring, by_sum, half, by_diff, plane_of_rings):
@@ -377,16 +374,18 @@ def lean_tables(ring_of, position_of, crystals_per_ring, by_sum, half, by_diff, 
 
 
 @njit(cache=True, nogil=True)
-def classify_lean(crystal_a, crystal_b, time_ns, use_time, t_start, t_end, delayed, use_delayed, energy_a,
+def classify_lean(crystal_a, crystal_b, time_ns, use_time, frame_starts, frame_ends, delayed, use_delayed, energy_a,
                   energy_b, use_energy, e_lo, e_hi, n_crystals, ring_multiplier, crystals_per_ring, by_sum,
-                  diff_flat, plane_flat, rings, bins_per_plane, first_reason, codes):
-    """Codes of a batch for one frame ``[t_start, t_end)`` ns: ``flat_bin << 1 | is_delayed``, or minus a tally slot.
+                  diff_flat, plane_flat, rings, bins_per_plane, n_bins, first_reason, codes):
+    """Codes of a batch, as :func:`classify_batch` gives them for binned events, or minus a tally slot.
 
-    A rejected event gets ``-(row * 16 + reason)``, ``row`` 1 when its time
-    is outside the frame, ``reason`` the first of data contract section 5
+    A binned event gets ``(frame * n_bins + flat_bin) << 1 | is_delayed``; a
+    rejected one ``-(slot * 16 + reason)``, ``slot`` its frame (n_frames when
+    its time is in none), ``reason`` the first of data contract section 5
     that applies (the same decisions as :func:`classify_event`; the tests
-    hold the two paths equal).
+    hold the two paths equal). :func:`tally_codes` counts them.
     """
+    n_frames = frame_starts.shape[0]
     one = np.int64(1)
     n_cr = np.int64(crystals_per_ring)
     width = 2 * n_cr - 1
@@ -412,9 +411,11 @@ def classify_lean(crystal_a, crystal_b, time_ns, use_time, t_start, t_end, delay
         plane = plane_ab * end1_is_a + plane_ba * (one - end1_is_a)
         is_delayed = np.int64(delayed[i]) if use_delayed else np.int64(0)
         inside = one
+        slot = np.int64(0)
         if use_time:
-            tt = time_ns[i]
-            inside = np.int64((tt >= t_start) & (tt < t_end))
+            k = frame_of(time_ns[i], frame_starts, frame_ends)
+            inside = np.int64(k >= 0)
+            slot = k + (one - inside) * (n_frames - k)
         energy_ok = one
         if use_energy:
             ea = energy_a[i]
@@ -423,22 +424,35 @@ def classify_lean(crystal_a, crystal_b, time_ns, use_time, t_start, t_end, delay
         flags = ((one - valid) | ((one - inside) << 1) | ((one - energy_ok) << 2)
                  | (np.int64(inplane == -1) << 3) | ((plane >> 63) & 16) | (np.int64(inplane == -2) << 5))
         keep = -np.int64(flags == 0)        # all ones when binned
-        code = ((plane * bins_per_plane + (inplane >> 1)) << 1) | is_delayed
-        rejected = -((one - inside) * 16 + first_reason[flags])
+        code = ((slot * n_bins + plane * bins_per_plane + (inplane >> 1)) << 1) | is_delayed
+        rejected = -(slot * 16 + first_reason[flags])
         codes[i] = (code & keep) | (rejected & ~keep)
 
 
 @njit(cache=True, nogil=True)
-def tally_codes(codes, tally):
-    """Add the codes of a batch to ``tally`` (4, TALLY_SLOTS): slot 0 prompts, 1 delayed, else minus the code.
+def tally_codes(codes, n_bins, tally):
+    """Count the codes of :func:`classify_lean` into ``tally`` (4, (n_frames + 1) * 16), index ``slot * 16 + field``.
 
     Four copies of the tally, taken in turn, so that equal neighbouring
-    codes do not wait on each other's increments; the caller sums them.
+    codes do not wait on each other's increments; the caller sums them. The
+    frame of a binned code is that of the previous one unless it falls
+    outside its range (events mostly come in time order), which spares a
+    division.
     """
+    span = np.int64(n_bins) << 1
+    lo = np.int64(0)
+    hi = span
+    k = np.int64(0)
     for i in range(codes.shape[0]):
         c = codes[i]
-        neg = c >> 63
-        tally[i & 3, ((-c) & neg) | ((c & 1) & ~neg)] += 1
+        if c < 0:
+            tally[i & 3, -c] += 1
+            continue
+        if c < lo or c >= hi:
+            k = c // span
+            lo = k * span
+            hi = lo + span
+        tally[i & 3, k * 16 + PROMPTS + (c & 1)] += 1
 
 
 @njit(cache=True, nogil=True)

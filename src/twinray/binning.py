@@ -318,8 +318,8 @@ def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = Tr
     return BinningState(geometry, frames_s, prompts, delayed, counts)
 
 
-#: How events are binned: "lean" (arithmetic classification, two threads; for single-frame dense
-#: states, else "direct"), "direct" (table classification, increments in
+#: How events are binned: "lean" (arithmetic classification, two threads; "direct" when the
+#: geometry does not allow its tables), "direct" (table classification, increments in
 #: event order) or "partitioned" (the same, counting sort by plane before the increments). All give the
 #: same result; bench/bench_binning.py compares them.
 ACCUMULATE = "lean"
@@ -392,14 +392,14 @@ class _Binner:
         self.no_flag = np.zeros(0, np.bool_)
         self.no_energy = np.zeros(0, np.float32)
         self.lean = None
-        if self.accumulate == "lean" and state.is_dense and state.n_frames == 1:
+        if self.accumulate == "lean":
             self.lean = kernels.lean_tables(self.ring_of, self.position_of, g.scanner.crystals_per_ring,
                                             self.by_sum, self.half, self.by_diff,
                                             self.plane_of_rings) if self.factored else None
         if self.lean is None and self.accumulate == "lean":
             self.accumulate = "direct"          # many frames, or a geometry the lean tables do not fit
         if self.lean is not None:
-            self.tally = np.zeros((4, kernels.TALLY_SLOTS), np.int64)
+            self.tally = np.zeros((4, (state.n_frames + 1) * 16), np.int64)
             self.n_threads = 2 if _usable_cores() >= 2 else 1
 
     def add(self, arrays: dict) -> None:
@@ -437,11 +437,7 @@ class _Binner:
                                self.by_diff, self.plane_of_rings, self.bins_per_plane, self.n_bins, codes,
                                self.state.counts)
         if self.sparse:
-            if len(self.split_codes) < n:
-                self.split_codes = np.empty(n, np.uint32)
-            kernels.split_by_frame(codes, self.n_bins, self.frame_offsets, self.split_codes)
-            for k in np.flatnonzero(np.diff(self.frame_offsets)):
-                self.state._stores[k].add(self.split_codes[self.frame_offsets[k]:self.frame_offsets[k + 1]])
+            self._add_to_stores(codes)
         elif self.accumulate == "direct":
             kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
         else:
@@ -451,43 +447,58 @@ class _Binner:
 
     def _add_lean(self, ca, cb, t, d, ea, eb, codes) -> None:
         """Lean kernels, on two threads for large batches: each classifies half the batch, then each adds
-        the events of its own half of the bins (even or odd flat index); one thread tallies meanwhile."""
+        the events of its own half of the bins (even or odd flat index) while the caller tallies; or the
+        codes are handed to the frames' stores."""
         n = len(ca)
         multiplier, by_sum, diff_flat, plane_flat, first_reason = self.lean
         sc = self.g.scanner
 
         def classify(lo, hi):
             kernels.classify_lean(ca[lo:hi], cb[lo:hi], t[lo:hi] if self.use_time else t, self.use_time,
-                                  self.starts[0], self.ends[0], d[lo:hi] if d.size else d, d.size > 0,
+                                  self.starts, self.ends, d[lo:hi] if d.size else d, d.size > 0,
                                   ea[lo:hi] if self.use_energy else ea, eb[lo:hi] if self.use_energy else eb,
                                   self.use_energy, self.e_lo, self.e_hi, sc.n_crystals, multiplier,
                                   sc.crystals_per_ring, by_sum, diff_flat, plane_flat, sc.rings,
-                                  self.bins_per_plane, first_reason, codes[lo:hi])
+                                  self.bins_per_plane, self.n_bins, first_reason, codes[lo:hi])
 
         self.tally[:] = 0
-        if self.n_threads == 1 or n < _THREADED_BATCH:
-            classify(0, n)
-            kernels.tally_codes(codes, self.tally)
-            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
-        else:
+        threaded = self.n_threads > 1 and n >= _THREADED_BATCH
+        if threaded:
             pool = _thread_pool()
             half = n // 2
             for f in [pool.submit(classify, 0, half), pool.submit(classify, half, n)]:
                 f.result()
-            jobs = [pool.submit(kernels.accumulate_share, codes, self.prompts_flat, self.delayed_flat, k, 2)
-                    for k in range(2)]
-            kernels.tally_codes(codes, self.tally)
+        else:
+            classify(0, n)
+        if self.sparse:
+            if threaded:
+                job = _thread_pool().submit(kernels.tally_codes, codes, self.n_bins, self.tally)
+            else:
+                kernels.tally_codes(codes, self.n_bins, self.tally)
+            self._add_to_stores(codes)
+            if threaded:
+                job.result()
+        elif threaded:
+            jobs = [_thread_pool().submit(kernels.accumulate_share, codes, self.prompts_flat, self.delayed_flat,
+                                          k, 2) for k in range(2)]
+            kernels.tally_codes(codes, self.n_bins, self.tally)
             for f in jobs:
                 f.result()
-        # Slots 0 and 1 are the binned prompts and delayed; the rest is row * 16 + reason.
-        tally = self.tally.sum(axis=0)
-        batch = np.zeros_like(self.state.counts)
-        batch[:, :len(FIELDS)] = tally.reshape(2, 16)[:, :len(FIELDS)]
-        batch[0, PROMPTS] = tally[0]
-        batch[0, DELAYED] = tally[1]
-        batch[:, READ] = 0
+        else:
+            kernels.tally_codes(codes, self.n_bins, self.tally)
+            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
+        batch = self.tally.sum(axis=0).reshape(-1, 16)[:, :len(FIELDS)]
         batch[:, READ] = batch.sum(axis=1)
         self.state.counts += batch
+
+    def _add_to_stores(self, codes) -> None:
+        """Hand the binned codes of a batch to the stores of their frames (many-frame states)."""
+        n = len(codes)
+        if len(self.split_codes) < n:
+            self.split_codes = np.empty(n, np.uint32)
+        kernels.split_by_frame(codes, self.n_bins, self.frame_offsets, self.split_codes)
+        for k in np.flatnonzero(np.diff(self.frame_offsets)):
+            self.state._stores[k].add(self.split_codes[self.frame_offsets[k]:self.frame_offsets[k + 1]])
 
 
 _TABLES_CACHE: dict = {}
