@@ -8,7 +8,8 @@ with ``--rebin ssrb``:
    30 equal frames (one pass): goal 30 frames <= 1.3 x one frame.
 2. **Replicates.** ``bin_replicates`` (Poisson bootstrap) with 1 and with 20
    replicates, and the ordinary ``bin_events``: goal 20 replicates <= 3 x 1.
-   A raw pyarrow decode of the same columns is the common baseline.
+   A raw pyarrow decode of the same columns is the common baseline. The
+   pair is timed with the default numba threads and again with one thread.
 3. **Parallel reconstruction.** The same frames (bench-top scanner, fully
    3-D OSEM) corrected and reconstructed by ``map_tasks`` on a local Dask
    cluster of 1 and of 2 workers (clusters started and warmed up before the
@@ -63,6 +64,8 @@ def raw_decode(path, columns, batch_size=1 << 20):
 
 
 def bench_framing(path, repeats):
+    import numba
+
     from twinray.binning import bin_events
     from twinray.events import open_events
     from twinray.geometry import sinogram_geometry
@@ -95,6 +98,18 @@ def bench_framing(path, repeats):
     out["replicates_20_passes"] = state.passes
     del state
     out["ratio_20_replicates_vs_1"] = out["replicates_20_s"] / out["replicates_1_s"]
+    # The weighted adds and the unweave share the sinogram rows among the numba threads; the same
+    # pair of timings with one thread shows what that parallelism contributes.
+    out["numba_threads"] = numba.get_num_threads()
+    numba.set_num_threads(1)
+    try:
+        out["replicates_1_one_thread_s"], _ = _median_time(
+            lambda: bin_replicates(source, geometry, mode="bootstrap", replicates=1, seed=1), repeats)
+        out["replicates_20_one_thread_s"], _ = _median_time(
+            lambda: bin_replicates(source, geometry, mode="bootstrap", replicates=20, seed=1), repeats)
+    finally:
+        numba.set_num_threads(out["numba_threads"])
+    out["ratio_20_replicates_vs_1_one_thread"] = out["replicates_20_one_thread_s"] / out["replicates_1_one_thread_s"]
     out["ratio_20_replicates_vs_plain_binning"] = out["replicates_20_s"] / out["bin_no_frame_s"]
     out["ratio_1_frame_vs_decode"] = out["bin_1_frame_s"] / out["decode_time_s"]
     out["ratio_20_replicates_vs_decode"] = out["replicates_20_s"] / out["decode_no_time_s"]

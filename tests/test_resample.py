@@ -414,3 +414,17 @@ def test_thinned_levels_estimate_the_same_concentration(tmp_path):
     low, full = (lv["regions"]["object"]["mean"] for lv in levels)
     # 2 replicates of ~25k prompts: the regional mean is known to about 1-2 %.
     assert low == pytest.approx(full, rel=0.06)
+
+
+def test_populating_pages_leaves_the_contents():
+    """populate_pages only faults pages in (madvise MADV_POPULATE_WRITE): the data stay as they were,
+    also for arrays that do not start or end on a page boundary."""
+    from twinray.resample import populate_pages
+
+    data = np.arange(3_000_001, dtype=np.int64)
+    view = data[7:-5]
+    assert populate_pages([view, np.zeros(1, np.uint8)], chunk_bytes=1 << 16) in (True, False)
+    np.testing.assert_array_equal(data, np.arange(3_000_001))
+    fresh = np.zeros((3, 1_000_000), np.int32)
+    populate_pages([fresh[1:]])
+    assert not fresh.any()

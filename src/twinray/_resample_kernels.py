@@ -167,15 +167,17 @@ def _poisson1(u):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _draw_weights(keys, row, thin, thresholds, out, i):
+def _draw_weights(keys, row, thin, thresholds, mixed, out, i):
     """Weights of event ``row`` in every slot: ``out[i, g]`` (high half of generator ``g``),
-    ``out[i, G + g]`` (low half)."""
+    ``out[i, G + g]`` (low half). ``mixed`` is scratch of shape (G,)."""
     n_gen = keys.shape[0]
     step = (np.uint64(row) + np.uint64(1)) * np.uint64(GOLDEN_GAMMA)
+    # The generator outputs first, in a loop of plain arithmetic the compiler vectorizes.
     for g in range(n_gen):
-        z = _mix64(keys[g] + step)
-        hi = np.int64(z >> np.uint64(32))
-        lo = np.int64(z & np.uint64(0xFFFFFFFF))
+        mixed[g] = _mix64(keys[g] + step)
+    for g in range(n_gen):
+        hi = np.int64(mixed[g] >> np.uint64(32))
+        lo = np.int64(mixed[g] & np.uint64(0xFFFFFFFF))
         if thin:
             out[i, g] = hi < thresholds[g]
             out[i, n_gen + g] = lo < thresholds[n_gen + g]
@@ -215,8 +217,9 @@ def event_weights(keys, first_row, n_rows, mode, thresholds, out):
     Used by the tests and for inspection; the binning kernel draws the same
     numbers.
     """
+    mixed = np.empty(keys.shape[0], np.uint64)
     for i in range(n_rows):
-        _draw_weights(keys, first_row + i, mode != 0, thresholds, out, i)
+        _draw_weights(keys, first_row + i, mode != 0, thresholds, mixed, out, i)
 
 
 @njit(cache=True, nogil=True)
@@ -261,12 +264,13 @@ def _accumulate_range(codes, rows, start, stop, keys, thin, thresholds, work_pro
                       slot_stream, out_prompts, out_delayed, row_div, spilled_rows, totals):
     n_slots = 2 * keys.shape[0]
     weights = np.empty((_BLOCK, n_slots), np.uint8)
+    mixed = np.empty(keys.shape[0], np.uint64)
     for i0 in range(start, stop, _BLOCK):
         nb = min(_BLOCK, stop - i0)
         # Draw first (a compute-bound loop), then add (a memory-bound loop whose loads the
         # prefetches overlap).
         for i in range(nb):
-            _draw_weights(keys, rows[i0 + i], thin, thresholds, weights, i)
+            _draw_weights(keys, rows[i0 + i], thin, thresholds, mixed, weights, i)
         for i in range(nb):
             ahead = i0 + i + _PREFETCH_AHEAD
             if ahead < stop:
@@ -349,19 +353,22 @@ def unweave_add(work, n_slots, slot_stream, row_div, spilled_rows, out):
 
     Rows of the sinogram where a cell was emptied early (``spilled_rows``)
     are added to ``out``; the others are written (first touch of fresh
-    pages with no read). One sequential read and one sequential write per
-    replicate; sinogram rows are shared among the threads.
+    pages with no read). A sinogram row of working counts (a few kilobytes)
+    stays in cache while it is written out replicate by replicate; rows are
+    shared among the threads.
     """
     n_rows = spilled_rows.shape[0]
     for k in prange(n_rows):
+        b0 = k * row_div
         add = spilled_rows[k] != 0
-        for b in range(k * row_div, (k + 1) * row_div):
-            base = b * n_slots
-            for s in range(n_slots):
-                r = slot_stream[s]
-                if r >= 0:
-                    v = np.int32(work[base + s])
-                    if add:
-                        out[r, b] += v
-                    else:
-                        out[r, b] = v
+        for s in range(n_slots):
+            r = slot_stream[s]
+            if r < 0:
+                continue
+            target = out[r]
+            if add:
+                for j in range(row_div):
+                    target[b0 + j] += np.int32(work[(b0 + j) * n_slots + s])
+            else:
+                for j in range(row_div):
+                    target[b0 + j] = np.int32(work[(b0 + j) * n_slots + s])

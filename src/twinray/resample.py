@@ -38,8 +38,12 @@ J. F. C. Kingman, Poisson Processes, Oxford University Press, 1993
 
 from __future__ import annotations
 
+import ctypes
 import dataclasses
 import math
+import mmap
+import sys
+import threading
 
 import numpy as np
 
@@ -294,6 +298,11 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
         out_d = delayed[s0:s1].reshape(m, geometry.n_bins) if with_delayed else np.zeros((m, 1), np.int32)
         work_p = np.zeros(geometry.n_bins * n_slots, np.uint8)
         work_d = np.zeros(geometry.n_bins * n_slots if with_delayed else 1, np.uint8)
+        # Fresh pages cost a fault each on first touch (0.3-1 s per GB, erratic); populating them
+        # on another thread overlaps that with the event pass, which is mostly single-threaded.
+        populating = threading.Thread(target=populate_pages, args=([work_p, work_d, out_p, out_d],),
+                                      name="twinray-populate", daemon=True)
+        populating.start()
         spilled_rows = np.zeros(n_rows, np.uint8)
         part_totals = np.zeros((n_parts, 2, n_slots), np.int64)
         # The ordinary binner classifies (same lookup tables, same accounting); only the
@@ -315,6 +324,7 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
             if progress is not None:
                 progress(len(codes))
         passes += 1
+        populating.join()
         if g0 == 0:
             counting.counts[:] = classifier.state.counts
         kernels.unweave_add(work_p, n_slots, slot_stream, geometry.radial_bins, spilled_rows, out_p)
@@ -329,6 +339,36 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
     return ReplicateState(geometry=geometry, frame_s=frame_s, mode=mode, seed=int(seed),
                           fractions=plan.fractions, replicate=plan.replicate, prompts=prompts,
                           delayed=delayed, totals=totals, accounting=counting.accounting(0), passes=passes)
+
+
+#: madvise advice that faults pages in writable without writing them (Linux >= 5.14, <sys/mman.h>).
+_MADV_POPULATE_WRITE = 23
+
+
+def populate_pages(arrays, chunk_bytes: int = 64 << 20) -> bool:
+    """Fault in the memory pages of arrays for writing, without changing their contents.
+
+    Uses ``madvise(MADV_POPULATE_WRITE)`` (Linux >= 5.14), which leaves the
+    data as it is, so it may run on another thread while the arrays are
+    being written. Returns False (and does nothing more) where the call is
+    not available; the pages are then faulted in on first touch as usual.
+    """
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        madvise = ctypes.CDLL(None, use_errno=True).madvise
+    except (OSError, AttributeError):
+        return False
+    madvise.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int]
+    madvise.restype = ctypes.c_int
+    page = mmap.PAGESIZE
+    for a in arrays:
+        start = -(-a.ctypes.data // page) * page            # whole pages inside the array only
+        end = (a.ctypes.data + a.nbytes) // page * page
+        for lo in range(start, end, chunk_bytes):
+            if madvise(lo, min(chunk_bytes, end - lo), _MADV_POPULATE_WRITE) != 0:
+                return False
+    return True
 
 
 def _classify(binner, arrays: dict) -> np.ndarray:
