@@ -226,10 +226,10 @@ def event_weights(keys, first_row, n_rows, mode, thresholds, out):
 def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes, sorted_rows):
     """Counting sort of the binned codes (with their global rows) by ``(code >> 1) // key_div``.
 
-    With ``key_div`` = radial bins, a key is one (plane, view) row of the
-    sinogram, so that the replicate increments that follow sweep the working
-    array in order instead of jumping over all of it (random access is what
-    limits binning). Returns how many codes were kept; afterwards
+    With ``key_div`` a multiple of the radial bins, a key is a block of
+    (plane, view) rows of the sinogram, so that the replicate increments that
+    follow sweep the working array in order instead of jumping over all of
+    it (random access is what limits binning). Returns how many codes were kept; afterwards
     ``key_counts[k]`` is the end of key ``k`` in the sorted arrays.
     """
     key_counts[:] = 0
@@ -309,7 +309,7 @@ def accumulate_replicates(codes, rows, key_ends, n_parts, keys, mode, thresholds
         From :func:`partition_codes`: ``flat_bin << 1 | delayed`` sorted by
         sinogram row, and the global row index of each event.
     key_ends : ndarray of int64
-        End of every sinogram row's events in ``codes`` (``key_counts`` of
+        End of every key's events in ``codes`` (``key_counts`` of
         :func:`partition_codes`); the work is split at these boundaries, so
         parallel parts never touch the same bin.
     n_parts : int
@@ -336,7 +336,7 @@ def accumulate_replicates(codes, rows, key_ends, n_parts, keys, mode, thresholds
     count = key_ends[key_ends.shape[0] - 1] if key_ends.shape[0] > 0 else 0
     n_keys = key_ends.shape[0]
     for part in prange(n_parts):
-        # Part boundaries at sinogram-row boundaries: parts write disjoint bins.
+        # Part boundaries at key boundaries: parts write disjoint bins.
         k0 = (n_keys * part) // n_parts
         k1 = (n_keys * (part + 1)) // n_parts
         start = key_ends[k0 - 1] if k0 > 0 else 0
