@@ -229,8 +229,9 @@ def partition_codes(codes, first_row, key_div, n_keys, key_counts, sorted_codes,
     With ``key_div`` a multiple of the radial bins, a key is a block of
     (plane, view) rows of the sinogram, so that the replicate increments that
     follow sweep the working array in order instead of jumping over all of
-    it (random access is what limits binning). Returns how many codes were kept; afterwards
-    ``key_counts[k]`` is the end of key ``k`` in the sorted arrays.
+    it (random access is what limits binning). Returns how many codes were
+    kept; afterwards ``key_counts[k]`` is the end of key ``k`` in the sorted
+    arrays.
     """
     key_counts[:] = 0
     n = codes.shape[0]
@@ -288,7 +289,8 @@ def _accumulate_range(codes, rows, start, stop, keys, thin, thresholds, work_pro
                 top = max(top, v)
                 totals[is_delayed, s] += weights[i, s]
             if top > SPILL_ABOVE:
-                # Rare (a bin with tens of events): empty the cell into the int32 output.
+                # Rare (a bin with hundreds of events): empty the cell into the int32 output;
+                # every cell was <= SPILL_ABOVE before this event, so none has wrapped.
                 out = out_delayed if is_delayed else out_prompts
                 for s in range(n_slots):
                     r = slot_stream[s]
