@@ -230,6 +230,18 @@ def test_replicates_equal_the_sum_of_their_weights(hot_study, mode, fractions, r
     assert state.prompts.max() > 2000                # the hot bin went through the spill path
     other = bin_replicates(source, mode=mode, fractions=fractions, replicates=replicates, seed=17)
     np.testing.assert_array_equal(other.prompts, state.prompts)
+    # the sinogram rows are shared among numba threads: one thread gives the same numbers
+    import numba
+
+    threads = numba.get_num_threads()
+    numba.set_num_threads(1)
+    try:
+        single = bin_replicates(source, mode=mode, fractions=fractions, replicates=replicates, seed=17)
+    finally:
+        numba.set_num_threads(threads)
+    np.testing.assert_array_equal(single.prompts, state.prompts)
+    np.testing.assert_array_equal(single.delayed, state.delayed)
+    np.testing.assert_array_equal(single.totals, state.totals)
 
 
 def test_accounting_is_that_of_the_original_events(study, original):
