@@ -212,11 +212,14 @@ def kernels_alone(path: Path, n_max: int = 8_000_000) -> dict:
                                 minlength=g.n_bins)
         times.append(time.thread_time() - t0)
     out["numpy_lut_bincount"] = {"total_Mev_s": n / min(times) / 1e6}
-    # The lean kernels (the default path), one thread: classify, tally, increments.
+    # The lean kernels (the default path), one thread: classify, tally and list, increments.
     state = empty_state(g, None, True)
     b = _Binner(state, None, "lean")
     multiplier, by_sum, diff_flat, plane_flat, first_reason = b.lean
     tally = np.zeros((4, 32), np.int64)
+    even = np.empty(BATCH, np.int64)
+    odd = np.empty(BATCH, np.int64)
+    combined = state._combined
     times = []
     for _ in range(3):
         codes = np.empty(BATCH, np.int64)
@@ -229,15 +232,16 @@ def kernels_alone(path: Path, n_max: int = 8_000_000) -> dict:
                             b.e_lo, b.e_hi, g.scanner.n_crystals, multiplier, g.scanner.crystals_per_ring, by_sum,
                             diff_flat, plane_flat, g.scanner.rings, b.bins_per_plane, b.n_bins, first_reason, c)
             t1 = time.thread_time()
-            k.tally_codes(c, b.n_bins, tally)
+            n_even, n_odd = k.tally_and_split(c, b.n_bins, b.n_bins, tally, even, odd)
             t2 = time.thread_time()
-            k.accumulate_share(c, b.prompts_flat, b.delayed_flat, 0, 1)
+            k.add_listed(even, n_even, combined)
+            k.add_listed(odd, n_odd, combined)
             t_classify += t1 - t0
             t_tally += t2 - t1
             t_acc += time.thread_time() - t2
         times.append((t_classify, t_tally, t_acc))
     tc, tt, ta = min(times, key=sum)
-    out["lean"] = {"classify_Mev_s": n / tc / 1e6, "tally_Mev_s": n / tt / 1e6, "accumulate_Mev_s": n / ta / 1e6,
+    out["lean"] = {"classify_Mev_s": n / tc / 1e6, "tally_and_list_Mev_s": n / tt / 1e6, "accumulate_Mev_s": n / ta / 1e6,
                    "total_Mev_s": n / (tc + tt + ta) / 1e6}
     out["events"] = n
     return out

@@ -98,6 +98,7 @@ class BinningState:
         self.geometry = geometry
         self.frames_s = frames_s
         self.counts = counts
+        self._combined = None    # prompts and delayed as one flat array (see empty_state), when they are
         if frame_stores is None:
             self._prompts, self._delayed = prompts, delayed
             self._stores = None
@@ -313,9 +314,14 @@ def empty_state(geometry: SinogramGeometry, frames=None, with_delayed: bool = Tr
         stores = [_FrameStore(geometry.shape, with_delayed, limit) for _ in range(n_frames)]
         return BinningState(geometry, frames_s, None, None, counts, frame_stores=stores)
     shape = (n_frames,) + geometry.shape
-    prompts = np.zeros(shape, np.int32)
-    delayed = np.zeros(shape, np.int32) if with_delayed else None
-    return BinningState(geometry, frames_s, prompts, delayed, counts)
+    # One array, prompts then delayed, so that the lean kernels address both with one index.
+    n_total = n_frames * geometry.n_bins
+    combined = np.zeros(n_total * (2 if with_delayed else 1), np.int32)
+    prompts = combined[:n_total].reshape(shape)
+    delayed = combined[n_total:].reshape(shape) if with_delayed else None
+    state = BinningState(geometry, frames_s, prompts, delayed, counts)
+    state._combined = combined
+    return state
 
 
 #: How events are binned: "lean" (arithmetic classification, two threads; "direct" when the
@@ -400,6 +406,8 @@ class _Binner:
             self.accumulate = "direct"          # many frames, or a geometry the lean tables do not fit
         if self.lean is not None:
             self.tally = np.zeros((4, (state.n_frames + 1) * 16), np.int64)
+            self.tallies: list = []
+            self.lists: list = []
             self.n_threads = 2 if _usable_cores() >= 2 else 1
 
     def add(self, arrays: dict) -> None:
@@ -446,48 +454,58 @@ class _Binner:
 
 
     def _add_lean(self, ca, cb, t, d, ea, eb, codes) -> None:
-        """Lean kernels, on two threads for large batches: each classifies half the batch, then each adds
-        the events of its own half of the bins (even or odd flat index) while the caller tallies; or the
-        codes are handed to the frames' stores."""
+        """Lean kernels, on two threads for large batches.
+
+        Each thread classifies half the batch, tallies it and lists its
+        increments by parity of the target element; then each thread makes
+        the increments of one parity from both halves (no element has two
+        writers). Many-frame states hand the codes to the frames' stores.
+        """
         n = len(ca)
         multiplier, by_sum, diff_flat, plane_flat, first_reason = self.lean
         sc = self.g.scanner
+        threaded = self.n_threads > 1 and n >= _THREADED_BATCH
+        cuts = [0, n // 2, n] if threaded else [0, n]
+        n_parts = len(cuts) - 1
+        if len(self.lists) < 2 * n_parts or len(self.lists[0]) < n:
+            self.lists = [np.empty(n, np.int64) for _ in range(2 * n_parts)]
+            self.tallies = [np.zeros_like(self.tally) for _ in range(n_parts)]
+        lists = [x[:cuts[p + 1] - cuts[p]] for p in range(n_parts) for x in self.lists[2 * p:2 * p + 2]]
+        combined = self.state._combined
+        n_total = 0 if combined is None else (len(combined) // (2 if self.state.with_delayed else 1))
 
-        def classify(lo, hi):
+        def classify(p):
+            lo, hi = cuts[p], cuts[p + 1]
             kernels.classify_lean(ca[lo:hi], cb[lo:hi], t[lo:hi] if self.use_time else t, self.use_time,
                                   self.starts, self.ends, d[lo:hi] if d.size else d, d.size > 0,
                                   ea[lo:hi] if self.use_energy else ea, eb[lo:hi] if self.use_energy else eb,
                                   self.use_energy, self.e_lo, self.e_hi, sc.n_crystals, multiplier,
                                   sc.crystals_per_ring, by_sum, diff_flat, plane_flat, sc.rings,
                                   self.bins_per_plane, self.n_bins, first_reason, codes[lo:hi])
+            self.tallies[p][:] = 0
+            return kernels.tally_and_split(codes[lo:hi], self.n_bins, n_total, self.tallies[p], lists[2 * p],
+                                           lists[2 * p + 1])
 
-        self.tally[:] = 0
-        threaded = self.n_threads > 1 and n >= _THREADED_BATCH
         if threaded:
             pool = _thread_pool()
-            half = n // 2
-            for f in [pool.submit(classify, 0, half), pool.submit(classify, half, n)]:
-                f.result()
+            lengths = [f.result() for f in [pool.submit(classify, p) for p in range(n_parts)]]
         else:
-            classify(0, n)
+            lengths = [classify(0)]
         if self.sparse:
-            if threaded:
-                job = _thread_pool().submit(kernels.tally_codes, codes, self.n_bins, self.tally)
-            else:
-                kernels.tally_codes(codes, self.n_bins, self.tally)
             self._add_to_stores(codes)
-            if threaded:
-                job.result()
+        elif combined is None:
+            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
         elif threaded:
-            jobs = [_thread_pool().submit(kernels.accumulate_share, codes, self.prompts_flat, self.delayed_flat,
-                                          k, 2) for k in range(2)]
-            kernels.tally_codes(codes, self.n_bins, self.tally)
-            for f in jobs:
+            def add(parity):
+                for p in range(n_parts):
+                    kernels.add_listed(lists[2 * p + parity], lengths[p][parity], combined)
+            for f in [_thread_pool().submit(add, parity) for parity in (0, 1)]:
                 f.result()
         else:
-            kernels.tally_codes(codes, self.n_bins, self.tally)
-            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
-        batch = self.tally.sum(axis=0).reshape(-1, 16)[:, :len(FIELDS)]
+            for parity in (0, 1):
+                kernels.add_listed(lists[parity], lengths[0][parity], combined)
+        total = sum(x.sum(axis=0) for x in self.tallies[:n_parts])
+        batch = total.reshape(-1, 16)[:, :len(FIELDS)]
         batch[:, READ] = batch.sum(axis=1)
         self.state.counts += batch
 
