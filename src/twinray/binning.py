@@ -355,7 +355,10 @@ def _usable_cores() -> int:
 class _Binner:
     """Holds the kernel arguments and scratch buffers for one binning run."""
 
-    def __init__(self, state: BinningState, energy_window, accumulate: str | None = None):
+    def __init__(self, state: BinningState, energy_window, accumulate: str | None = None,
+                 add_to_sinograms: bool = True):
+        # add_to_sinograms=False: classify and count only (callers that weight the events themselves).
+        self.add_to_sinograms = add_to_sinograms
         g = state.geometry
         self.accumulate = accumulate or ACCUMULATE
         if self.accumulate not in ("lean", "direct", "partitioned"):
@@ -444,7 +447,9 @@ class _Binner:
                                self.position_of, self.inplane_code, self.factored, self.by_sum, self.half,
                                self.by_diff, self.plane_of_rings, self.bins_per_plane, self.n_bins, codes,
                                self.state.counts)
-        if self.sparse:
+        if not self.add_to_sinograms:
+            pass
+        elif self.sparse:
             self._add_to_stores(codes)
         elif self.accumulate == "direct":
             kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
@@ -491,7 +496,9 @@ class _Binner:
             lengths = [f.result() for f in [pool.submit(classify, p) for p in range(n_parts)]]
         else:
             lengths = [classify(0)]
-        if self.sparse:
+        if not self.add_to_sinograms:
+            pass
+        elif self.sparse:
             self._add_to_stores(codes)
         elif combined is None:
             kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)

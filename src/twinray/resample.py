@@ -308,9 +308,10 @@ def bin_replicates(events, geometry: SinogramGeometry | None = None, *, mode: st
         populating.start()
         spilled_rows = np.zeros(n_rows, np.uint8)
         part_totals = np.zeros((n_parts, 2, n_slots), np.int64)
-        # The ordinary binner classifies (same lookup tables, same accounting); only the
-        # accumulation differs.
-        classifier = _Binner(empty_state(geometry, frames, with_delayed=with_delayed), window)
+        # The ordinary binner classifies (same lookup tables, same accounting) without adding the
+        # events to its own sinograms; only the accumulation differs.
+        classifier = _Binner(empty_state(geometry, frames, with_delayed=with_delayed), window,
+                             add_to_sinograms=False)
         # Events are sorted by blocks of sinogram rows whose working counts fit a core's cache
         # (fewer blocks make the sort cheaper; within a block the adds stay in cache).
         rows_per_block = int(max(1, min(16, _BLOCK_BYTES // (geometry.radial_bins * n_slots))))
@@ -382,10 +383,10 @@ def populate_pages(arrays, chunk_bytes: int = 64 << 20) -> bool:
 def _classify(binner, arrays: dict) -> np.ndarray:
     """Codes of one batch (``flat_bin << 1 | delayed``, or negative when rejected).
 
-    The ordinary binner bins the batch (the original, unweighted sinogram
-    comes for free) and leaves the codes of its first pass in
-    ``binner.codes``; so the lookup-table logic and the accounting live only
-    in :mod:`twinray.binning` and its kernels, whatever their internals.
+    The ordinary binner (made with ``add_to_sinograms=False``) classifies
+    and counts the batch and leaves the codes in ``binner.codes``; so the
+    lookup-table logic and the accounting live only in
+    :mod:`twinray.binning` and its kernels, whatever their internals.
     """
     binner.add(arrays)
     return binner.codes[:len(arrays["crystal_a"])]
