@@ -421,3 +421,28 @@ def test_lean_kernels_on_two_threads_equal_the_reference(spec, frames, sparse):
     else:
         assert "delayed" not in cols and not np.any(delayed)
     np.testing.assert_array_equal(state.counts, counts)
+
+
+def test_binning_in_a_forked_child_after_the_parent_binned(rng):
+    """A child forked after the parent used the binning threads bins too (it gets its own threads)."""
+    import multiprocessing
+
+    from twinray import binning
+
+    saved = binning._THREADED_BATCH, binning._usable_cores
+    binning._THREADED_BATCH, binning._usable_cores = 1, (lambda: 2)
+    try:
+        cols = random_events(SCANNER, 3000, rng, delayed_fraction=0.1)
+        parent = bin_event_arrays(cols, GEOMETRY)
+        ctx = multiprocessing.get_context("fork")
+        with ctx.Pool(1) as pool:
+            child = pool.apply_async(_bin_in_child, (cols,)).get(timeout=120)
+    finally:
+        binning._THREADED_BATCH, binning._usable_cores = saved
+    np.testing.assert_array_equal(child[0], parent.prompts)
+    np.testing.assert_array_equal(child[1], parent.counts)
+
+
+def _bin_in_child(cols):
+    state = bin_event_arrays(cols, GEOMETRY)
+    return state.prompts, state.counts

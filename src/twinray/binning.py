@@ -52,16 +52,24 @@ ACCUMULATE = "lean"
 
 #: Smallest batch that is split between two threads.
 _THREADED_BATCH = 1 << 16
-_POOL = None
+_POOL = (None, None)      # (process id, executor)
 
 
 def _thread_pool():
-    """Two worker threads for the lean kernels (which release the GIL), made on first use."""
+    """Two worker threads for the lean kernels (which release the GIL), made on first use.
+
+    Made again in a forked child process, which inherits the executor but
+    not its threads (work submitted to it would never run).
+    """
     global _POOL
-    if _POOL is None:
+    import os
+
+    pid, pool = _POOL
+    if pool is None or pid != os.getpid():
         from concurrent.futures import ThreadPoolExecutor
-        _POOL = ThreadPoolExecutor(max_workers=2, thread_name_prefix="twinray-bin")
-    return _POOL
+        pool = ThreadPoolExecutor(max_workers=2, thread_name_prefix="twinray-bin")
+        _POOL = (os.getpid(), pool)
+    return pool
 
 
 def _usable_cores() -> int:
