@@ -134,7 +134,7 @@ class _Binner:
                                             self.by_sum, self.half, self.by_diff,
                                             self.plane_of_rings) if self.factored else None
         if self.lean is None and self.accumulate == "lean":
-            self.accumulate = "direct"          # many frames, or a geometry the lean tables do not fit
+            self.accumulate = "direct"          # a geometry whose tables do not allow the lean form
         if self.lean is not None:
             self.tally = np.zeros((4, (state.n_frames + 1) * 16), np.int64)
             self.tallies: list = []
@@ -184,7 +184,6 @@ class _Binner:
         else:
             kernels.accumulate_codes(codes, self.prompts_flat, self.delayed_flat, self.bins_per_plane,
                                      self.n_keys, self.key_counts, self.sorted_codes)
-
 
     def _add_lean(self, ca, cb, t, d, ea, eb, codes) -> None:
         """Lean kernels, on two threads for large batches.
