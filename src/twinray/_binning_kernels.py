@@ -293,46 +293,46 @@ def accumulate_codes_direct(codes, prompts_flat, delayed_flat):
                 prompts_flat[c >> 1] += 1
 
 
+@njit(cache=True, nogil=True, inline="always")
+def frame_of_code(c, span, k, lo):
+    """``(frame, first code of the frame)`` of a binned code, ``span = 2 * n_bins`` codes per frame.
+
+    Events usually arrive in time order, so the frame of the previous code
+    (``k``, starting at ``lo``) is tried before dividing.
+    """
+    if c < lo or c >= lo + span:
+        k = c // span
+        lo = k * span
+    return k, lo
+
+
 @njit(cache=True, nogil=True)
 def split_by_frame(codes, n_bins, offsets, out):
     """Binned codes grouped by frame: ``out[offsets[k]:offsets[k + 1]]`` holds frame ``k``'s codes.
 
     The frame index is taken off each code, leaving ``flat_bin << 1 |
     is_delayed`` as uint32 (stable counting sort; rejected codes are
-    dropped). ``offsets`` has length n_frames + 1. Events usually arrive in
-    time order, so the frame of the previous code is tried before dividing.
+    dropped). ``offsets`` has length n_frames + 1.
     """
     n_frames = offsets.shape[0] - 1
     offsets[:] = 0
     span = np.int64(n_bins) << 1
-    lo = np.int64(0)
-    hi = span
-    k = 0
+    k, lo = np.int64(0), np.int64(0)
     for i in range(codes.shape[0]):
         c = codes[i]
-        if c < 0:
-            continue
-        if c < lo or c >= hi:
-            k = c // span
-            lo = k * span
-            hi = lo + span
-        offsets[k + 1] += 1
+        if c >= 0:
+            k, lo = frame_of_code(c, span, k, lo)
+            offsets[k + 1] += 1
     for f in range(n_frames):
         offsets[f + 1] += offsets[f]
     fill = offsets[:n_frames].copy()
-    lo = np.int64(0)
-    hi = span
-    k = 0
+    k, lo = np.int64(0), np.int64(0)
     for i in range(codes.shape[0]):
         c = codes[i]
-        if c < 0:
-            continue
-        if c < lo or c >= hi:
-            k = c // span
-            lo = k * span
-            hi = lo + span
-        out[fill[k]] = np.uint32(c - lo)
-        fill[k] += 1
+        if c >= 0:
+            k, lo = frame_of_code(c, span, k, lo)
+            out[fill[k]] = np.uint32(c - lo)
+            fill[k] += 1
 
 
 # ---- the lean path: one frame window, arithmetic-only classification ------------------------------------------
@@ -446,9 +446,7 @@ def tally_and_split(codes, n_bins, n_total, tally, even, odd):
     loop, which is several times faster than testing each code there.
     """
     span = np.int64(n_bins) << 1
-    lo = np.int64(0)
-    hi = span
-    k = np.int64(0)
+    k, lo = np.int64(0), np.int64(0)
     n_even = 0
     n_odd = 0
     for i in range(codes.shape[0]):
@@ -456,10 +454,7 @@ def tally_and_split(codes, n_bins, n_total, tally, even, odd):
         if c < 0:
             tally[i & 3, -c] += 1
             continue
-        if c < lo or c >= hi:
-            k = c // span
-            lo = k * span
-            hi = lo + span
+        k, lo = frame_of_code(c, span, k, lo)
         d = c & 1
         tally[i & 3, k * 16 + PROMPTS + d] += 1
         index = (c >> 1) + d * n_total

@@ -136,7 +136,7 @@ class _Binner:
         if self.lean is None and self.accumulate == "lean":
             self.accumulate = "direct"          # a geometry whose tables do not allow the lean form
         if self.lean is not None:
-            self.tally = np.zeros((4, (state.n_frames + 1) * 16), np.int64)
+            self.tally_shape = (4, (state.n_frames + 1) * 16)      # 4 copies x (frame or outside) x field
             self.tallies: list = []
             self.lists: list = []
             self.n_threads = 2 if _usable_cores() >= 2 else 1
@@ -201,7 +201,7 @@ class _Binner:
         n_parts = len(cuts) - 1
         if len(self.lists) < 2 * n_parts or len(self.lists[0]) < n:
             self.lists = [np.empty(n, np.int64) for _ in range(2 * n_parts)]
-            self.tallies = [np.zeros_like(self.tally) for _ in range(n_parts)]
+            self.tallies = [np.zeros(self.tally_shape, np.int64) for _ in range(n_parts)]
         lists = [x[:cuts[p + 1] - cuts[p]] for p in range(n_parts) for x in self.lists[2 * p:2 * p + 2]]
         combined = self.state._combined
         n_total = 0 if combined is None else (len(combined) // (2 if self.state.with_delayed else 1))
