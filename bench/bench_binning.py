@@ -232,7 +232,7 @@ def kernels_alone(path: Path, n_max: int = 8_000_000) -> dict:
                             b.e_lo, b.e_hi, g.scanner.n_crystals, multiplier, g.scanner.crystals_per_ring, by_sum,
                             diff_flat, plane_flat, g.scanner.rings, b.bins_per_plane, b.n_bins, first_reason, c)
             t1 = time.thread_time()
-            n_even, n_odd = k.tally_and_split(c, b.n_bins, b.n_bins, tally, even, odd)
+            n_even, n_odd = k.tally_and_split(c, b.n_bins, b.n_bins, tally, True, even, odd)
             t2 = time.thread_time()
             k.add_listed(even, n_even, combined)
             k.add_listed(odd, n_odd, combined)
@@ -251,7 +251,7 @@ def kernels_alone(path: Path, n_max: int = 8_000_000) -> dict:
                         g.scanner.crystals_per_ring, by_sum, diff_flat, plane_flat, g.scanner.rings,
                         b.bins_per_plane, b.n_bins, first_reason, c)
         ev, od = np.empty(len(c), np.int64), np.empty(len(c), np.int64)
-        n_even, n_odd = k.tally_and_split(c, b.n_bins, b.n_bins, tally, ev, od)
+        n_even, n_odd = k.tally_and_split(c, b.n_bins, b.n_bins, tally, True, ev, od)
         lists.append(((ev, n_even), (od, n_odd)))
     from concurrent.futures import ThreadPoolExecutor
 

@@ -446,3 +446,15 @@ def test_binning_in_a_forked_child_after_the_parent_binned(rng):
 def _bin_in_child(cols):
     state = bin_event_arrays(cols, GEOMETRY)
     return state.prompts, state.counts
+
+
+@SETTINGS
+@given(spec=EVENTS, cut=st.floats(0, 1), frames=st.one_of(st.none(), FRAMES))
+def test_binning_into_a_merged_state(spec, cut, frames):
+    """A merged state (its own arrays, not one combined buffer) can be binned into like a new one."""
+    cols = _events(spec)
+    k = int(cut * spec["n"])
+    first = {c: v[:k] for c, v in cols.items()}
+    merged = bin_event_arrays(first, GEOMETRY, frames=frames) + empty_state(GEOMETRY, frames, "delayed" in cols)
+    bin_event_arrays({c: v[k:] for c, v in cols.items()}, GEOMETRY, frames=frames, state=merged)
+    assert_same_state(merged, bin_event_arrays(cols, GEOMETRY, frames=frames))

@@ -430,7 +430,7 @@ def classify_lean(crystal_a, crystal_b, time_ns, use_time, frame_starts, frame_e
 
 
 @njit(cache=True, nogil=True)
-def tally_and_split(codes, n_bins, n_total, tally, even, odd):
+def tally_and_split(codes, n_bins, n_total, tally, listing, even, odd):
     """Count a share of a batch's codes and list the increments they make, by parity of the target.
 
     ``tally`` (4, (n_frames + 1) * 16) gets index ``slot * 16 + field``
@@ -439,7 +439,8 @@ def tally_and_split(codes, n_bins, n_total, tally, even, odd):
     ``(code >> 1) + (code & 1) * n_total`` of the combined prompts-then-
     delayed array; those indices go to ``even`` or ``odd`` by their parity,
     so that two threads can add them without ever writing the same element.
-    Returns the lengths of the two lists.
+    Returns the lengths of the two lists. Without ``listing`` (callers that
+    do not add to dense sinograms) only the tally is made.
 
     The lists are written without jumps (each index is stored in both and
     only one length grows): the increments that follow then run in a tight
@@ -457,6 +458,8 @@ def tally_and_split(codes, n_bins, n_total, tally, even, odd):
         k, lo = frame_of_code(c, span, k, lo)
         d = c & 1
         tally[i & 3, k * 16 + PROMPTS + d] += 1
+        if not listing:
+            continue
         index = (c >> 1) + d * n_total
         even[n_even] = index
         odd[n_odd] = index

@@ -205,6 +205,8 @@ class _Binner:
         lists = [x[:cuts[p + 1] - cuts[p]] for p in range(n_parts) for x in self.lists[2 * p:2 * p + 2]]
         combined = self.state._combined
         n_total = 0 if combined is None else (len(combined) // (2 if self.state.with_delayed else 1))
+        # The increment lists serve only dense states held in one combined array.
+        listing = self.add_to_sinograms and not self.sparse and combined is not None
 
         def classify(p):
             lo, hi = cuts[p], cuts[p + 1]
@@ -215,8 +217,8 @@ class _Binner:
                                   sc.crystals_per_ring, by_sum, diff_flat, plane_flat, sc.rings,
                                   self.bins_per_plane, self.n_bins, first_reason, codes[lo:hi])
             self.tallies[p][:] = 0
-            return kernels.tally_and_split(codes[lo:hi], self.n_bins, n_total, self.tallies[p], lists[2 * p],
-                                           lists[2 * p + 1])
+            return kernels.tally_and_split(codes[lo:hi], self.n_bins, n_total, self.tallies[p], listing,
+                                           lists[2 * p], lists[2 * p + 1])
 
         if threaded:
             pool = _thread_pool()
@@ -228,7 +230,7 @@ class _Binner:
         elif self.sparse:
             self._add_to_stores(codes)
         elif combined is None:
-            kernels.accumulate_share(codes, self.prompts_flat, self.delayed_flat, 0, 1)
+            kernels.accumulate_codes_direct(codes, self.prompts_flat, self.delayed_flat)
         elif threaded:
             def add(parity):
                 for p in range(n_parts):
@@ -369,11 +371,12 @@ def bin_events(events, geometry: SinogramGeometry | None = None, *, frames=None,
     Notes
     -----
     Decoding (pyarrow, in a thread) overlaps with the numba kernels, which
-    release the GIL. The kernels first look up the in-plane bin of a whole
-    batch in one tight loop, from small tables by crystal-index sum and
-    difference that are checked to reproduce the geometry's table exactly,
-    then decide bins and rejections with branch-free selects, then add the
-    events.
+    release the GIL. Two threads each classify half of a batch (ring by
+    multiplication, in-plane bin from small tables by crystal-index sum and
+    difference checked to reproduce the geometry's table exactly, decisions
+    by integer arithmetic), tally it and list its increments by parity of
+    the target; then each thread adds one parity. Many-frame studies keep
+    short frames as event codes (see :class:`BinningState`).
 
     References
     ----------
