@@ -27,7 +27,8 @@ def _clip_length(p0, p1, lo, hi):
             if not lo[k] <= p0[k] <= hi[k]:
                 return 0.0
             continue
-        t0, t1 = sorted(((lo[k] - p0[k]) / d[k], (hi[k] - p0[k]) / d[k]))
+        with np.errstate(over="ignore"):     # a tiny direction gives +-inf: the slab is never left
+            t0, t1 = sorted(((lo[k] - p0[k]) / d[k], (hi[k] - p0[k]) / d[k]))
         a0, a1 = max(a0, t0), min(a1, t1)
     return max(0.0, a1 - a0) * float(np.linalg.norm(d))
 
